@@ -1,0 +1,450 @@
+"""The catalog: a directory of traces, one Parquet file each, and an index table with one row per trace.
+
+Layout::
+
+    ROOT/catalog.json          format name and version
+    ROOT/index.parquet         one row per trace (id, origin, source, group, tags, figures, provenance, ...)
+    ROOT/traces/ID.parquet     the samples, with the trace's metadata in the Parquet schema
+    ROOT/.staging/             files of a change that is not committed yet
+    ROOT/.lock                 taken (flock) by every change
+
+A change (ingest, add, remove) runs under the lock in three steps: stage data files in ``.staging``
+(each written to a temporary name, flushed and renamed), replace ``index.parquet`` atomically (the
+commit point), then move the staged files into place. Whoever takes the lock next finishes or undoes an
+interrupted change: a staged file whose id the index lists is moved into place (roll forward), any other
+staged file is deleted (roll back). So a crash or a kill at any moment leaves no index row without its
+file and no half-written file.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import fcntl
+import hashlib
+import json
+import os
+import shutil
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable, Iterator, Sequence
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from . import selection
+from .errors import CatalogError, InputError, TracegenError
+from .ingest import Labels, check_options, expand_paths, reader
+from .progress import bar
+from .trace import Trace
+
+FORMAT_NAME = "tracegen-catalog"
+FORMAT_VERSION = 1
+INDEX_FILE = "index.parquet"
+TRACES_DIR = "traces"
+STAGING_DIR = ".staging"
+LOCK_FILE = ".lock"
+MARKER_FILE = "catalog.json"
+
+META_COLUMNS = ("id", "origin", "source", "group", "tags", "duration_s", "step_s", "weight", "file",
+                "file_sha256", "provenance")
+FIGURE_COLUMNS = tuple(Trace.from_columns([0.0]).summary())
+INDEX_COLUMNS = META_COLUMNS + FIGURE_COLUMNS
+_TEXT = {"id", "origin", "source", "group", "tags", "file", "file_sha256", "provenance"}
+
+
+def _fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _write_atomic(table: pa.Table, target: Path) -> str:
+    """Write a Parquet file under a temporary name, flush it, rename it into place; return its sha256."""
+    tmp = target.with_name(f".{target.name}.{os.getpid()}.tmp")
+    pq.write_table(table, tmp, compression="zstd")
+    with open(tmp, "rb") as f:
+        digest = hashlib.sha256(f.read()).hexdigest()
+        os.fsync(f.fileno())
+    os.replace(tmp, target)
+    return digest
+
+
+def _sha256(path: Path) -> str:
+    with open(path, "rb") as f:
+        return hashlib.sha256(f.read()).hexdigest()
+
+
+def index_row(trace: Trace, file_sha256: str) -> dict[str, Any]:
+    """The index row describing one stored trace."""
+    row: dict[str, Any] = {
+        "id": trace.id, "origin": trace.origin, "source": trace.source, "group": trace.group,
+        "tags": json.dumps(dict(sorted(trace.tags.items()))), "duration_s": trace.duration_s,
+        "step_s": trace.step_s, "weight": trace.weight, "file": f"{TRACES_DIR}/{trace.id}.parquet",
+        "file_sha256": file_sha256,
+        "provenance": json.dumps(trace.provenance, sort_keys=True, default=str),
+    }
+    row.update(trace.summary())
+    return row
+
+
+def _index_table(rows: pd.DataFrame) -> pa.Table:
+    fields = [pa.field(c, pa.string() if c in _TEXT else pa.float64()) for c in INDEX_COLUMNS]
+    schema = pa.schema(fields, metadata={b"tracegen": json.dumps(
+        {"format": FORMAT_NAME, "version": FORMAT_VERSION}).encode()})
+    rows = rows.sort_values("id", kind="stable") if len(rows) else rows
+    arrays = [pa.array(rows[c].tolist() if len(rows) else [], type=f.type) for c, f in zip(INDEX_COLUMNS, fields)]
+    return pa.Table.from_arrays(arrays, schema=schema)
+
+
+@dataclass
+class IngestReport:
+    """What an ingest did: ids added, ids already present, files that failed (with ``skip_bad``)."""
+
+    files: int = 0
+    added: list[str] = field(default_factory=list)
+    present: list[str] = field(default_factory=list)
+    failed: list[str] = field(default_factory=list)
+
+
+@dataclass
+class VerifyReport:
+    """What verify found; ``ok`` when the catalog is consistent."""
+
+    checked: int = 0
+    problems: list[str] = field(default_factory=list)
+    recovered: list[str] = field(default_factory=list)
+    repaired: list[str] = field(default_factory=list)
+
+    @property
+    def ok(self) -> bool:
+        return not self.problems or len(self.repaired) >= len(self.problems)
+
+
+class Catalog:
+    """A catalog directory. Open with :meth:`open`; reading needs no lock, every change takes it."""
+
+    def __init__(self, root: Path):
+        self.root = Path(root)
+        self._last_recovery: list[str] = []
+
+    # --- opening ----------------------------------------------------------------------------
+    @classmethod
+    def open(cls, root: str | Path, *, create: bool = False) -> "Catalog":
+        """Open the catalog at ``root``; with ``create``, make it when it does not exist yet."""
+        root = Path(root)
+        marker = root / MARKER_FILE
+        if not marker.exists():
+            if not create:
+                raise CatalogError("is not a tracegen catalog (no catalog.json)", path=root,
+                                   hint="build one with `tracegen demo --catalog DIR` or `tracegen ingest`")
+            if root.exists() and not root.is_dir():
+                raise CatalogError("exists and is not a directory", path=root)
+            try:
+                (root / TRACES_DIR).mkdir(parents=True, exist_ok=True)
+                tmp = root / f".{MARKER_FILE}.tmp"
+                tmp.write_text(json.dumps({"format": FORMAT_NAME, "version": FORMAT_VERSION}) + "\n")
+                os.replace(tmp, marker)
+            except OSError as exc:
+                raise CatalogError(f"cannot be created ({exc.strerror})", path=root) from None
+        else:
+            try:
+                info = json.loads(marker.read_text())
+            except (OSError, json.JSONDecodeError) as exc:
+                raise CatalogError(f"catalog.json is unreadable ({exc})", path=marker) from None
+            if info.get("format") != FORMAT_NAME or info.get("version") != FORMAT_VERSION:
+                raise CatalogError(f"is format {info.get('format')!r} version {info.get('version')!r}, "
+                                   f"expected {FORMAT_NAME!r} version {FORMAT_VERSION}", path=marker,
+                                   hint="use the tracegen version that wrote it")
+        (root / TRACES_DIR).mkdir(exist_ok=True)
+        return cls(root)
+
+    # --- reading ----------------------------------------------------------------------------
+    def index(self) -> pd.DataFrame:
+        """The index as a DataFrame; ``tags`` and ``provenance`` decoded to dicts."""
+        path = self.root / INDEX_FILE
+        if not path.exists():
+            frame = pd.DataFrame({c: pd.Series(dtype=object if c in _TEXT else float) for c in INDEX_COLUMNS})
+        else:
+            try:
+                frame = pq.read_table(path).to_pandas()
+            except (pa.ArrowException, OSError) as exc:
+                raise CatalogError(f"index is unreadable ({exc})", path=path,
+                                   hint="run `tracegen catalog verify --repair`") from None
+        frame = frame.copy()
+        frame["tags"] = [json.loads(t) for t in frame["tags"]]
+        frame["provenance"] = [json.loads(p) for p in frame["provenance"]]
+        return frame.reset_index(drop=True)
+
+    def rows(self, where: Sequence[str] = ()) -> list[dict[str, Any]]:
+        """Index rows (plain dicts, NaN as None) of the traces that meet ``where``."""
+        frame = selection.select(self.index(), list(where))
+        out = []
+        for rec in frame.to_dict(orient="records"):
+            out.append({k: (None if isinstance(v, float) and np.isnan(v) else v) for k, v in rec.items()})
+        return out
+
+    def ids(self, where: Sequence[str] = ()) -> list[str]:
+        """Ids of the traces that meet ``where``, sorted."""
+        return sorted(selection.select(self.index(), list(where))["id"])
+
+    def resolve(self, ref: str) -> str:
+        """The full id for an id or a unique prefix of one."""
+        ids = self.index()["id"]
+        hits = [i for i in ids if i.startswith(ref)] if ref else []
+        if len(hits) == 1:
+            return hits[0]
+        if not hits:
+            raise CatalogError(f"holds no trace with id '{ref}'", path=self.root,
+                               hint="list ids with `tracegen catalog list`")
+        raise CatalogError(f"id prefix '{ref}' matches {len(hits)} traces", path=self.root,
+                           hint="give more characters")
+
+    def get(self, ref: str) -> Trace:
+        """Load one trace by id (or unique id prefix)."""
+        tid = self.resolve(ref)
+        path = self.root / TRACES_DIR / f"{tid}.parquet"
+        try:
+            table = pq.read_table(path)
+        except (pa.ArrowException, OSError) as exc:
+            raise CatalogError(f"trace file is unreadable ({exc})", path=path,
+                               hint="run `tracegen catalog verify`") from None
+        return Trace.from_arrow(table, path=str(path))
+
+    def traces(self, where: Sequence[str] = ()) -> Iterator[Trace]:
+        """Load the traces that meet ``where``, one at a time (sorted by id)."""
+        for tid in self.ids(where):
+            yield self.get(tid)
+
+    def __len__(self) -> int:
+        return len(self.index())
+
+    # --- changing ---------------------------------------------------------------------------
+    @contextlib.contextmanager
+    def _locked(self) -> Iterator[None]:
+        try:
+            fd = os.open(self.root / LOCK_FILE, os.O_RDWR | os.O_CREAT, 0o644)
+        except OSError as exc:
+            raise CatalogError(f"cannot take the catalog lock ({exc.strerror})", path=self.root) from None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX)
+            self._last_recovery = self._recover()
+            yield
+        finally:
+            fcntl.flock(fd, fcntl.LOCK_UN)
+            os.close(fd)
+
+    def _recover(self) -> list[str]:
+        """Finish or undo a change that was interrupted; return what was done (lock held)."""
+        staging = self.root / STAGING_DIR
+        if not staging.exists():
+            return []
+        listed = set(self.index()["id"])
+        done = []
+        for f in sorted(staging.iterdir()):
+            tid = f.name.removesuffix(".parquet")
+            final = self.root / TRACES_DIR / f.name
+            if f.suffix == ".parquet" and not f.name.startswith(".") and tid in listed and not final.exists():
+                os.replace(f, final)
+                done.append(f"finished storing {tid} (an earlier change was interrupted after its commit)")
+            else:
+                f.unlink()
+                done.append(f"discarded {f.name} (an earlier change was interrupted before its commit)")
+        staging.rmdir()
+        _fsync_dir(self.root / TRACES_DIR)
+        return done
+
+    def _commit(self, new_rows: list[dict[str, Any]], drop_ids: Iterable[str] = ()) -> None:
+        """Replace the index (the commit point), then move staged files into place (lock held)."""
+        frame = self.index()
+        drop = set(drop_ids)
+        if drop:
+            frame = frame[~frame["id"].isin(drop)]
+        frame["tags"] = [json.dumps(dict(sorted(t.items()))) for t in frame["tags"]]
+        frame["provenance"] = [json.dumps(p, sort_keys=True, default=str) for p in frame["provenance"]]
+        if new_rows:
+            frame = pd.concat([frame, pd.DataFrame(new_rows, columns=list(INDEX_COLUMNS))], ignore_index=True)
+        _write_atomic(_index_table(frame), self.root / INDEX_FILE)
+        _fsync_dir(self.root)
+        staging = self.root / STAGING_DIR
+        if staging.exists():
+            for row in new_rows:
+                src = staging / f"{row['id']}.parquet"
+                if src.exists():
+                    os.replace(src, self.root / row["file"])
+            _fsync_dir(self.root / TRACES_DIR)
+            shutil.rmtree(staging)
+
+    def _stage(self, trace: Trace) -> dict[str, Any]:
+        staging = self.root / STAGING_DIR
+        staging.mkdir(exist_ok=True)
+        digest = _write_atomic(trace.to_arrow(), staging / f"{trace.id}.parquet")
+        return index_row(trace, digest)
+
+    def add(self, traces: Iterable[Trace], *, progress: bool | None = None) -> IngestReport:
+        """Store traces; ones whose id is already in the catalog are left as they are."""
+        report = IngestReport()
+        with self._locked():
+            known = set(self.index()["id"])
+            rows = []
+            with bar(list(traces), label="storing traces", enabled=progress) as items:
+                for tr in items:
+                    if tr.id in known:
+                        report.present.append(tr.id)
+                        continue
+                    rows.append(self._stage(tr))
+                    known.add(tr.id)
+                    report.added.append(tr.id)
+            self._commit(rows)
+        return report
+
+    def ingest(self, paths: Iterable[str | Path], fmt: str, labels: Labels | None = None, *,
+               skip_bad: bool = False, progress: bool | None = None, **options: Any) -> IngestReport:
+        """Read measured files with a format's reader and store their traces in one commit.
+
+        All or nothing: if any file is bad the error is raised and the catalog is unchanged, unless
+        ``skip_bad``, which stores the good files and lists the bad ones in ``failed``. Files whose
+        traces are already stored add nothing.
+        """
+        labels = labels or Labels()
+        opts = check_options(fmt, options)
+        files = expand_paths(paths, fmt)
+        read = reader(fmt).read
+        report = IngestReport(files=len(files))
+        with self._locked():
+            known = set(self.index()["id"])
+            rows: list[dict[str, Any]] = []
+            try:
+                with bar(files, label=f"ingesting {len(files)} {fmt} files", enabled=progress) as items:
+                    for path in items:
+                        try:
+                            traces = read(Path(path), labels, **opts)
+                        except TracegenError as exc:
+                            if not skip_bad:
+                                raise
+                            report.failed.append(str(exc))
+                            continue
+                        for tr in traces:
+                            if tr.id in known:
+                                report.present.append(tr.id)
+                                continue
+                            rows.append(self._stage(tr))
+                            known.add(tr.id)
+                            report.added.append(tr.id)
+            except BaseException:
+                shutil.rmtree(self.root / STAGING_DIR, ignore_errors=True)
+                raise
+            self._commit(rows)
+        return report
+
+    def remove(self, refs: Iterable[str]) -> list[str]:
+        """Remove traces by id (or unique prefix); return the ids removed."""
+        with self._locked():
+            ids = sorted({self.resolve(r) for r in refs})
+            if not ids:
+                return []
+            staging = self.root / STAGING_DIR
+            staging.mkdir(exist_ok=True)
+            for tid in ids:  # parked in staging first, so an interrupted remove is rolled back
+                src = self.root / TRACES_DIR / f"{tid}.parquet"
+                if src.exists():
+                    os.replace(src, staging / src.name)
+            self._commit([], drop_ids=ids)
+        return ids
+
+    # --- checking ---------------------------------------------------------------------------
+    def verify(self, *, repair: bool = False, progress: bool | None = None) -> VerifyReport:
+        """Check every file against its hash and content id; find orphans. ``repair`` removes them.
+
+        Problems: an index row whose file is missing, unreadable, or whose bytes or content do not match
+        the row; a file in ``traces/`` that no row lists (an orphan). Repair drops such rows and files.
+        """
+        report = VerifyReport()
+        with self._locked():
+            report.recovered = list(self._last_recovery)
+            frame = self.index()
+            bad_ids: list[str] = []
+            with bar(list(frame.itertuples(index=False)), label="verifying", enabled=progress) as rows:
+                for row in rows:
+                    report.checked += 1
+                    path = self.root / row.file
+                    problem = None
+                    if not path.exists():
+                        problem = "file is missing"
+                    elif _sha256(path) != row.file_sha256:
+                        problem = "file bytes do not match the index's sha256"
+                    else:
+                        try:
+                            tr = Trace.from_arrow(pq.read_table(path), path=str(path))
+                            if tr.id != row.id:
+                                problem = f"content hashes to {tr.id}, not its id"
+                        except (TracegenError, pa.ArrowException, OSError) as exc:
+                            problem = f"file is unreadable ({exc})"
+                    if problem:
+                        report.problems.append(f"{row.file}: {problem}")
+                        bad_ids.append(row.id)
+            listed = {f"{i}.parquet" for i in frame["id"]}
+            orphans = sorted(f for f in (self.root / TRACES_DIR).iterdir() if f.name not in listed)
+            for f in orphans:
+                report.problems.append(f"{TRACES_DIR}/{f.name}: orphan (no index row lists it)")
+            if repair and report.problems:
+                for f in orphans:
+                    if f.is_dir():
+                        shutil.rmtree(f)
+                    else:
+                        f.unlink()
+                    report.repaired.append(f"removed orphan {TRACES_DIR}/{f.name}")
+                for tid in bad_ids:
+                    p = self.root / TRACES_DIR / f"{tid}.parquet"
+                    if p.exists():
+                        p.unlink()
+                    report.repaired.append(f"dropped trace {tid} (its file was missing or damaged)")
+                self._commit([], drop_ids=bad_ids)
+        return report
+
+    # --- figures ----------------------------------------------------------------------------
+    def stats(self, where: Sequence[str] = (), by: str | None = None) -> list[dict[str, Any]]:
+        """Counts and hours of the selected traces, overall or per value of a tag or text field."""
+        frame = selection.select(self.index(), list(where))
+        if by is None:
+            keys = pd.Series(["all"] * len(frame), index=frame.index)
+        elif by in frame.columns and by not in ("tags", "provenance"):
+            keys = frame[by].astype(str)
+        else:
+            name = by.removeprefix("tag.")
+            if len(frame) and not any(name in t for t in frame["tags"]):
+                raise CatalogError(f"no trace has a tag or field '{name}'", path=self.root, field="by",
+                                   hint="list tags with `tracegen catalog list`")
+            keys = pd.Series([t.get(name, "(none)") for t in frame["tags"]], index=frame.index)
+        out = []
+        for key in sorted(keys.unique()) if len(frame) else []:
+            part = frame[keys == key]
+            bw = part["mean_bw_bps"].to_numpy(dtype=float)
+            out.append({
+                "key": key, "traces": int(len(part)), "hours": float(part["duration_s"].sum() / 3600),
+                "groups": int(part["group"].nunique()),
+                "measured": int((part["origin"] == "measured").sum()),
+                "synthetic": int((part["origin"] == "synthetic").sum()),
+                "median_mean_bw_bps": float(np.nanmedian(bw)) if np.isfinite(bw).any() else None,
+                "median_rtt_ms": _nanmedian(part["median_rtt_ms"]),
+                "outage_share": _weighted(part["outage_share"], part["duration_s"]),
+            })
+        return out
+
+
+def _nanmedian(values: pd.Series) -> float | None:
+    v = values.to_numpy(dtype=float)
+    return float(np.nanmedian(v)) if np.isfinite(v).any() else None
+
+
+def _weighted(values: pd.Series, weights: pd.Series) -> float | None:
+    v = values.to_numpy(dtype=float)
+    w = weights.to_numpy(dtype=float)
+    ok = np.isfinite(v) & np.isfinite(w)
+    return float(np.sum(v[ok] * w[ok]) / np.sum(w[ok])) if ok.any() and np.sum(w[ok]) > 0 else None
+
+
+__all__ = ["Catalog", "IngestReport", "VerifyReport", "InputError", "index_row"]

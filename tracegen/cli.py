@@ -1,0 +1,323 @@
+"""The ``tracegen`` command: a thin click layer that parses, calls the library and prints."""
+
+from __future__ import annotations
+
+import json
+import math
+import sys
+from pathlib import Path
+from typing import Any
+
+import click
+
+from . import __version__
+from .errors import TracegenError
+from .paths import ENV_CATALOG, default_catalog
+
+EXIT_USER_ERROR = 2
+EXIT_INTERNAL = 3
+
+
+class _Group(click.Group):
+    """Turns a TracegenError into one line on stderr and exit code 2 (a traceback only with --debug)."""
+
+    def invoke(self, ctx: click.Context) -> Any:
+        try:
+            return super().invoke(ctx)
+        except TracegenError as exc:
+            if (ctx.obj or {}).get("debug"):
+                raise
+            click.echo(f"error: {exc}", err=True)
+            ctx.exit(EXIT_USER_ERROR)
+        except (click.exceptions.Exit, click.exceptions.Abort, click.ClickException):
+            raise
+        except Exception as exc:  # a bug of ours: say so briefly, keep the traceback for --debug
+            if (ctx.obj or {}).get("debug"):
+                raise
+            click.echo(f"internal error: {type(exc).__name__}: {exc} (rerun with --debug for the traceback "
+                       f"and please report it)", err=True)
+            ctx.exit(EXIT_INTERNAL)
+
+
+def _catalog_option(f):
+    return click.option("--catalog", "catalog_path", type=click.Path(file_okay=False, path_type=Path),
+                        default=None, help=f"Catalog directory (default: ${ENV_CATALOG}, the checkout's "
+                                           "catalog/, or a per-user data directory).")(f)
+
+
+def _catalog_root(ctx: click.Context, given: Path | None) -> Path:
+    return given or ctx.obj.get("catalog") or default_catalog()
+
+
+def _open(ctx: click.Context, given: Path | None, create: bool = False):
+    from .catalog import Catalog
+
+    return Catalog.open(_catalog_root(ctx, given), create=create)
+
+
+def _clean(value: Any) -> Any:
+    if isinstance(value, float) and math.isnan(value):
+        return None
+    if isinstance(value, dict):
+        return {k: _clean(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_clean(v) for v in value]
+    return value
+
+
+def _print_json(value: Any) -> None:
+    click.echo(json.dumps(_clean(value), indent=2, sort_keys=True, default=str))
+
+
+@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
+@_catalog_option
+@click.option("--debug", is_flag=True, help="Show the full traceback on errors.")
+@click.version_option(__version__, prog_name="tracegen")
+@click.pass_context
+def cli(ctx: click.Context, catalog_path: Path | None, debug: bool) -> None:
+    """Curate measured network-path traces, model them, synthesise more, and measure the gap."""
+    ctx.ensure_object(dict)
+    ctx.obj["catalog"] = catalog_path
+    ctx.obj["debug"] = debug
+
+
+# --- ingest ----------------------------------------------------------------------------------------
+# (flag, reader option, click type, help). Every reader option has exactly one flag here.
+_READER_FLAGS: list[tuple[str, str, Any, str]] = [
+    ("--time-column", "time_column", str, "Column with the time stamps (header name or 0-based position)."),
+    ("--time-unit", "time_unit", str, "Time stamps in s, ms, us, ns or iso8601."),
+    ("--bandwidth-column", "bandwidth_column", str, "Column with the throughput or available bandwidth."),
+    ("--bandwidth-unit", "bandwidth_unit", str,
+     "bps, kbps, Mbps, Gbps, Bps, kBps, MBps, or bytes (bytes since the previous row)."),
+    ("--rtt-column", "rtt_column", str, "Column with the round-trip time."),
+    ("--rtt-unit", "rtt_unit", str, "RTT in ms, s or us."),
+    ("--loss-column", "loss_column", str, "Column with the loss per interval."),
+    ("--loss-unit", "loss_unit", str, "Loss as fraction or percent."),
+    ("--jitter-column", "jitter_column", str, "Column with the jitter."),
+    ("--jitter-unit", "jitter_unit", str, "Jitter in ms, s or us."),
+    ("--cell-column", "cell_column", str, "Column with the serving cell or access point."),
+    ("--lat-column", "lat_column", str, "Column with latitude in degrees (coarsened unless --keep-personal)."),
+    ("--lon-column", "lon_column", str, "Column with longitude in degrees (coarsened unless --keep-personal)."),
+    ("--delimiter", "delimiter", str, "Field delimiter: ',', 'tab', ';' or '|' (default: detect)."),
+    ("--split-column", "split_column", str, "Column whose values cut the file into separate traces."),
+    ("--tag-column", "tag_columns", str, "Column whose first value becomes a tag (repeatable)."),
+    ("--group-column", "group_column", str, "Column naming the group (session, route, device) of each trace."),
+    ("--bytes-column", "bytes_column", str, "Packets: column with each packet's size in bytes."),
+    ("--seq-column", "seq_column", str, "Packets: column with sequence numbers (loss from gaps)."),
+    ("--seq-bits", "seq_bits", int, "Packets: sequence numbers wrap at 2^N (e.g. 16 for RTP)."),
+    ("--send-time-column", "send_time_column", str, "Packets: sender time stamps (jitter per RFC 3550)."),
+    ("--clock-rate-hz", "clock_rate_hz", float, "RTCP: RTP clock rate for jitter, when lines do not say."),
+    ("--interval", "interval_s", str, "Interval or bin width, e.g. 1s or 250ms."),
+]
+
+
+def _reader_options(f):
+    for flag, key, typ, text in reversed(_READER_FLAGS):
+        multiple = key == "tag_columns"
+        f = click.option(flag, key, type=typ, default=None, multiple=multiple, help=text)(f)
+    return f
+
+
+def _parse_tags(values: tuple[str, ...]) -> dict[str, str]:
+    tags = {}
+    for item in values:
+        key, sep, value = item.partition("=")
+        if not sep or not key.strip():
+            raise click.BadParameter(f"'{item}' is not KEY=VALUE", param_hint="--tag")
+        tags[key.strip()] = value.strip()
+    return tags
+
+
+@cli.command()
+@click.argument("files", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--format", "fmt", type=click.Choice(["csv", "rtcp", "ping", "packets"]), required=True,
+              help="What the files are.")
+@click.option("--tag", "tags", multiple=True, metavar="KEY=VALUE",
+              help="Tag every trace (access, mobility, place, direction, device, ...). Repeatable.")
+@click.option("--group", default=None, help="Group of every trace (default: the file name, or --group-column).")
+@click.option("--source", default=None, help="Source label (default: the file name).")
+@click.option("--keep-personal", is_flag=True,
+              help="Keep addresses, identifiers and precise locations instead of dropping or coarsening them.")
+@click.option("--describe", is_flag=True, help="Dry run: print what would be read and store nothing.")
+@click.option("--skip-bad", is_flag=True, help="Store the good files and list the bad ones (default: all or nothing).")
+@click.option("--json", "as_json", is_flag=True, help="Print the result as JSON.")
+@_reader_options
+@_catalog_option
+@click.pass_context
+def ingest(ctx: click.Context, files: tuple[Path, ...], fmt: str, tags: tuple[str, ...], group: str | None,
+           source: str | None, keep_personal: bool, describe: bool, skip_bad: bool, as_json: bool,
+           catalog_path: Path | None, **options: Any) -> None:
+    """Read measured FILES (or directories of them) into the catalog."""
+    from .ingest import Labels, describe_file, expand_paths
+    from .units import parse_duration_s
+
+    if options.get("tag_columns") == ():
+        options["tag_columns"] = None
+    if options.get("interval_s") is not None:
+        options["interval_s"] = parse_duration_s(options["interval_s"], "--interval")
+    given = {k: v for k, v in options.items() if v is not None}
+    labels = Labels(tags=_parse_tags(tags), group=group, source=source, keep_personal=keep_personal)
+    if describe:
+        for path in expand_paths(files, fmt):
+            click.echo(describe_file(path, fmt, labels, **given))
+        return
+    cat = _open(ctx, catalog_path, create=True)
+    report = cat.ingest(files, fmt, labels, skip_bad=skip_bad, **given)
+    if as_json:
+        _print_json({"files": report.files, "added": report.added, "present": report.present,
+                     "failed": report.failed})
+    else:
+        click.echo(f"{report.files} files: {len(report.added)} traces added, "
+                   f"{len(report.present)} already present; catalog {cat.root} holds {len(cat)}")
+        for line in report.failed:
+            click.echo(f"skipped: {line}", err=True)
+
+
+# --- catalog ---------------------------------------------------------------------------------------
+@cli.group(cls=_Group)
+def catalog() -> None:
+    """List, show, remove, verify and count the catalog's traces."""
+
+
+_where = click.option("--where", multiple=True, metavar="EXPR",
+                      help="Selection, e.g. access=lte or 'mean_bw_bps<5e6' (repeatable; all must hold).")
+
+
+def _fmt_tags(tags: dict) -> str:
+    return " ".join(f"{k}={v}" for k, v in sorted(tags.items()))
+
+
+@catalog.command("list")
+@_where
+@click.option("--json", "as_json", is_flag=True, help="Print a JSON array of index rows.")
+@_catalog_option
+@click.pass_context
+def list_(ctx: click.Context, where: tuple[str, ...], as_json: bool, catalog_path: Path | None) -> None:
+    """List traces (one line each, or JSON with --json)."""
+    rows = _open(ctx, catalog_path).rows(where)
+    if as_json:
+        _print_json(rows)
+        return
+    click.echo(f"{'id':16}  {'origin':9}  {'group':16}  {'duration':>9}  {'step':>6}  {'mean Mbit/s':>11}  tags")
+    for r in rows:
+        mean = r["mean_bw_bps"]
+        click.echo(f"{r['id']:16}  {r['origin']:9}  {str(r['group'])[:16]:16}  {r['duration_s']:8.0f}s  "
+                   f"{r['step_s']:5.2g}s  {'' if mean is None else f'{mean / 1e6:11.3f}':>11}  {_fmt_tags(r['tags'])}")
+    click.echo(f"{len(rows)} traces")
+
+
+@catalog.command()
+@click.argument("trace_id")
+@click.option("--samples", default=10, show_default=True, help="How many samples to print.")
+@click.option("--json", "as_json", is_flag=True, help="Print the index row and the samples as JSON.")
+@_catalog_option
+@click.pass_context
+def show(ctx: click.Context, trace_id: str, samples: int, as_json: bool, catalog_path: Path | None) -> None:
+    """Show one trace: what is known about it and its first samples."""
+    cat = _open(ctx, catalog_path)
+    tid = cat.resolve(trace_id)
+    row = next(r for r in cat.rows([f"id={tid}"]))
+    frame = cat.get(tid).to_pandas().head(samples)
+    if as_json:
+        row = dict(row)
+        row["samples"] = frame.astype(object).where(frame.notna(), None).to_dict(orient="list")
+        _print_json(row)
+        return
+    for key in ("id", "origin", "source", "group", "duration_s", "step_s", "weight"):
+        click.echo(f"{key:>18}: {row[key]}")
+    click.echo(f"{'tags':>18}: {_fmt_tags(row['tags'])}")
+    for key in ("mean_bw_bps", "median_bw_bps", "p5_bw_bps", "outage_share", "median_rtt_ms", "p95_rtt_ms",
+                "mean_loss", "median_jitter_ms", "cell_changes"):
+        click.echo(f"{key:>18}: {'unknown' if row[key] is None else f'{row[key]:.6g}'}")
+    click.echo(f"{'provenance':>18}: {json.dumps(row['provenance'], sort_keys=True)}")
+    click.echo(frame.to_string(index=False))
+
+
+@catalog.command()
+@click.argument("trace_ids", nargs=-1)
+@_where
+@_catalog_option
+@click.pass_context
+def remove(ctx: click.Context, trace_ids: tuple[str, ...], where: tuple[str, ...], catalog_path: Path | None) -> None:
+    """Remove traces by id (or unique prefix) and/or by selection."""
+    if not trace_ids and not where:
+        raise click.UsageError("name trace ids or give --where")
+    cat = _open(ctx, catalog_path)
+    refs = list(trace_ids) + (cat.ids(where) if where else [])
+    removed = cat.remove(refs)
+    click.echo(f"removed {len(removed)} traces; {len(cat)} left")
+
+
+@catalog.command()
+@click.option("--repair", is_flag=True, help="Remove orphan files and rows whose file is missing or damaged.")
+@click.option("--json", "as_json", is_flag=True, help="Print the findings as JSON.")
+@_catalog_option
+@click.pass_context
+def verify(ctx: click.Context, repair: bool, as_json: bool, catalog_path: Path | None) -> None:
+    """Check every trace file against its hash; exit 1 when problems remain."""
+    report = _open(ctx, catalog_path).verify(repair=repair)
+    if as_json:
+        _print_json({"checked": report.checked, "problems": report.problems, "recovered": report.recovered,
+                     "repaired": report.repaired, "ok": report.ok})
+    else:
+        for line in report.recovered:
+            click.echo(f"recovered: {line}")
+        for line in report.problems:
+            click.echo(f"problem: {line}")
+        for line in report.repaired:
+            click.echo(f"repaired: {line}")
+        click.echo(f"{report.checked} traces checked: "
+                   + ("consistent" if report.ok else f"{len(report.problems)} problems (try --repair)"))
+    if not report.ok:
+        ctx.exit(1)
+
+
+@catalog.command()
+@_where
+@click.option("--by", default=None, help="Break down by a tag (access, mobility, ...) or field (origin, group).")
+@click.option("--json", "as_json", is_flag=True, help="Print the figures as JSON.")
+@_catalog_option
+@click.pass_context
+def stats(ctx: click.Context, where: tuple[str, ...], by: str | None, as_json: bool,
+          catalog_path: Path | None) -> None:
+    """Count traces and hours, overall or per tag value."""
+    rows = _open(ctx, catalog_path).stats(where, by=by)
+    if as_json:
+        _print_json(rows)
+        return
+    click.echo(f"{by or '':14}  {'traces':>6}  {'hours':>7}  {'groups':>6}  {'median Mbit/s':>13}  "
+               f"{'median RTT ms':>13}  {'outage':>6}")
+    for r in rows:
+        bw = r["median_mean_bw_bps"]
+        rtt = r["median_rtt_ms"]
+        out = r["outage_share"]
+        click.echo(f"{str(r['key'])[:14]:14}  {r['traces']:6d}  {r['hours']:7.2f}  {r['groups']:6d}  "
+                   f"{'-' if bw is None else f'{bw / 1e6:.3f}':>13}  {'-' if rtt is None else f'{rtt:.1f}':>13}  "
+                   f"{'-' if out is None else f'{out:.1%}':>6}")
+
+
+# --- demo ------------------------------------------------------------------------------------------
+@cli.command()
+@click.option("--seed", default=7, show_default=True, help="Seed of the invented world.")
+@click.option("--sessions", default=36, show_default=True, help="How many measurement sessions to simulate.")
+@click.option("--duration", "duration", default="300s", show_default=True, help="Length of each session.")
+@_catalog_option
+@click.pass_context
+def demo(ctx: click.Context, seed: int, sessions: int, duration: str, catalog_path: Path | None) -> None:
+    """Build the demo catalog from an invented field world, through the real readers."""
+    from .demo import build_demo
+    from .units import parse_duration_s
+
+    root = _catalog_root(ctx, catalog_path)
+    report = build_demo(root, seed=seed, sessions=sessions, duration_s=parse_duration_s(duration, "--duration"))
+    named = catalog_path or ctx.obj.get("catalog")
+    click.echo(report.text(None if named is None else str(root)))
+
+
+def main() -> None:
+    """Console entry point."""
+    cli(obj={}, prog_name="tracegen")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

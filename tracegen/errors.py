@@ -1,0 +1,58 @@
+"""One exception family: every failure a user can cause is a TracegenError.
+
+The message always says where (file, line, field) and what to do, so the CLI can print it as one line.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+
+class TracegenError(Exception):
+    """A failure the user can act on.
+
+    ``path``, ``line`` and ``field`` locate the problem; ``hint`` says what to do about it.
+    """
+
+    def __init__(
+        self,
+        message: str,
+        *,
+        path: str | Path | None = None,
+        line: int | None = None,
+        field: str | None = None,
+        hint: str | None = None,
+    ) -> None:
+        self.message = message
+        self.path = None if path is None else str(path)
+        self.line = line
+        self.field = field
+        self.hint = hint
+        super().__init__(self.__str__())
+
+    def __str__(self) -> str:
+        where = ""
+        if self.path is not None:
+            where = self.path
+            if self.line is not None:
+                where += f":{self.line}"
+            where += ": "
+        elif self.line is not None:
+            where = f"line {self.line}: "
+        what = f"field '{self.field}': " if self.field else ""
+        text = f"{where}{what}{self.message}"
+        if self.hint:
+            text += f" ({self.hint})"
+        return text
+
+
+class InputError(TracegenError):
+    """A measured file or option that cannot be read as given."""
+
+
+class CatalogError(TracegenError):
+    """A catalog that is missing, locked, inconsistent or asked for something it does not hold."""
+
+
+class SelectionError(TracegenError):
+    """A selection expression that cannot be parsed or names an unknown field."""

@@ -1,0 +1,61 @@
+"""Personal data in measured traces: what counts as personal, and how ingest drops or coarsens it.
+
+Defaults (what every reader does unless ``keep_personal`` is set):
+- identifiers (IP and MAC addresses, IMSI/IMEI/MSISDN, device, subscriber or user ids, RTCP CNAMEs) are
+  never stored; where one is used as a group or a tag it is replaced by a keyed hash (a pseudonym), which
+  still keeps one device's traces together for leak-free splits;
+- locations are rounded to 0.01 degree (about 1.1 km of latitude);
+- calendar start times are kept to the day only.
+This is a technical default, not legal advice: follow the data-protection law that applies to you.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import re
+from typing import Any, Mapping
+
+import numpy as np
+
+LOCATION_DECIMALS = 2
+
+_PERSONAL_NAME = re.compile(
+    r"(^|[_\-. ])(ip|ipv4|ipv6|addr|address|src|dst|host|hostname|mac|imsi|imei|msisdn|iccid|phone|"
+    r"subscriber|user|username|device|device_id|deviceid|id|ue_id|cname|email|lat|latitude|lon|lng|"
+    r"longitude|gps|location)([_\-. ]|$)",
+    re.IGNORECASE,
+)
+_IPV4 = re.compile(r"\b(?:\d{1,3}\.){3}\d{1,3}\b")
+_IPV6 = re.compile(r"\b(?:[0-9a-fA-F]{1,4}:){2,7}[0-9a-fA-F]{0,4}\b")
+
+
+def is_personal_field(name: str) -> bool:
+    """True when a column or key name suggests an identifier or a location."""
+    return bool(_PERSONAL_NAME.search(name.strip()))
+
+
+def pseudonym(value: str, *, salt: str = "tracegen") -> str:
+    """A stable pseudonym for an identifier: the same value always maps to the same 12 hex characters."""
+    return "p-" + hashlib.sha256(f"{salt}\0{value}".encode()).hexdigest()[:12]
+
+
+def coarsen_degrees(values: np.ndarray, decimals: int = LOCATION_DECIMALS) -> np.ndarray:
+    """Round coordinates to ``decimals`` decimal places (NaN stays NaN)."""
+    return np.round(np.asarray(values, dtype=np.float64), decimals)
+
+
+def scrub_text(text: str) -> str:
+    """Replace IP addresses inside free text by a placeholder."""
+    return _IPV6.sub("<address>", _IPV4.sub("<address>", text))
+
+
+def scrub_mapping(values: Mapping[str, Any], keep_personal: bool) -> dict[str, Any]:
+    """Drop keys that look personal (unless ``keep_personal``)."""
+    if keep_personal:
+        return dict(values)
+    return {k: v for k, v in values.items() if not is_personal_field(k)}
+
+
+def calendar_start(iso_text: str, keep_personal: bool) -> str:
+    """A start time for provenance: full when kept, else the day only (``YYYY-MM-DD``)."""
+    return iso_text if keep_personal else iso_text[:10]
