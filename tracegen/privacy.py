@@ -26,7 +26,7 @@ _PERSONAL_NAME = re.compile(
     re.IGNORECASE,
 )
 _IPV4 = re.compile(r"\b(?:\d{1,3}\.){3}\d{1,3}\b")
-_IPV6 = re.compile(r"\b(?:[0-9a-fA-F]{1,4}:){2,7}[0-9a-fA-F]{0,4}\b")
+_IPV6 = re.compile(r"(?<![0-9A-Za-z:])[0-9a-fA-F]{0,4}(?::[0-9a-fA-F]{0,4}){2,7}(?![0-9A-Za-z:])")
 
 
 def is_personal_field(name: str) -> bool:
@@ -46,7 +46,11 @@ def coarsen_degrees(values: np.ndarray, decimals: int = LOCATION_DECIMALS) -> np
 
 def scrub_text(text: str) -> str:
     """Replace IP addresses inside free text by a placeholder."""
-    return _IPV6.sub("<address>", _IPV4.sub("<address>", text))
+    def v6(m: re.Match) -> str:  # "::" or eight groups; leaves clock times such as 12:30:45 alone
+        word = m.group(0)
+        return "<address>" if "::" in word or word.count(":") == 7 else word
+
+    return _IPV6.sub(v6, _IPV4.sub("<address>", text))
 
 
 def scrub_mapping(values: Mapping[str, Any], keep_personal: bool) -> dict[str, Any]:

@@ -1,6 +1,8 @@
 """Delimited text logs (CSV, TSV, semicolon or pipe separated) of throughput and path figures.
 
-The user maps columns to fields by option, by header name or by 0-based position. Lines that are blank
+The user maps columns to fields by option, by header name or by 0-based position; columns named as in
+the Trace schema (``t_s``, ``bandwidth_bps``, ``rtt_ms``, ``loss``, ``jitter_ms``, ``cell``) are read
+without options. Lines that are blank
 or start with ``#`` are skipped. One delimiter per file: detected from the first line (``,`` tab ``;``
 ``|``) unless given; a row with a different number of fields than the first line is an error.
 
@@ -52,6 +54,8 @@ OPTIONS: dict[str, Any] = {
 }
 PATTERNS = ("*.csv", "*.tsv")
 _DELIMITERS = {",": ",", "tab": "\t", "\\t": "\t", "\t": "\t", ";": ";", "|": "|"}
+_SCHEMA_NAMES = {"rtt_column": "rtt_ms", "loss_column": "loss", "jitter_column": "jitter_ms",
+                 "cell_column": "cell"}
 _FIELD_COLUMNS = ("time_column", "bandwidth_column", "rtt_column", "loss_column", "jitter_column",
                   "cell_column", "lat_column", "lon_column", "split_column", "group_column")
 
@@ -109,6 +113,10 @@ class _Table:
         by_name = any(not str(n).isdigit() for n in names)
         self.header: list[str] | None = cells if by_name or not _looks_numeric(cells) else None
         self.header_line = lineno if self.header is not None else None
+        if self.header is not None:  # our own schema's column names are read without being asked for
+            for opt, name in _SCHEMA_NAMES.items():
+                if options.get(opt) is None and name in self.header:
+                    wanted[opt] = name
         self.index = {opt: _resolve(name, self.header, opt, path, self.width) for opt, name in wanted.items()}
         self.tag_index = {name: _resolve(name, self.header, "tag_columns", path, self.width)
                           for name in tag_columns}
@@ -172,8 +180,8 @@ def _times(table: _Table, unit: str) -> tuple[np.ndarray, str | None]:
         i = int(bad[0])
         raise InputError(f"'{col[i][:40]}' is not an ISO 8601 time", path=str(table.path),
                          line=int(table.lines[i]), field=name, hint="e.g. 2026-03-01T12:00:00.250Z")
-    ns = stamps.astype("int64").to_numpy()
-    return (ns - ns[0]) / 1e9, stamps.iloc[0].isoformat()
+    seconds = (stamps - stamps.iloc[0]).dt.total_seconds().to_numpy(dtype=np.float64)
+    return seconds, stamps.iloc[0].isoformat()
 
 
 def _parts(table: _Table) -> list[tuple[str | None, np.ndarray]]:
@@ -226,7 +234,8 @@ def _read(path: Path, labels: Labels, options: dict[str, Any]) -> tuple[list[Tra
 
     traces = []
     for part, rows in _parts(table):
-        t = t_all[rows] - t_all[rows[0]]
+        with np.errstate(invalid="ignore"):
+            t = t_all[rows] - t_all[rows[0]]
         lines = table.lines[rows]
         bw = bw_raw[rows]
         if bw_unit == units.BYTES_PER_INTERVAL:
