@@ -1,0 +1,83 @@
+"""Ingest speed: our CSV reader against pandas.read_csv on the same files, in the same run.
+
+Usage: python benchmarks/ingest_speed.py [--repeat N] [FOLDER]
+FOLDER defaults to ../shared/field-data/nyu-mets-lte (skipped with a message when absent); without it,
+a synthetic folder of 27 files x 4000 rows is written to a temporary directory so the ratio is still
+measured. Prints a table and a last line of JSON.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import tempfile
+import time
+import tracemalloc
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from tracegen.catalog import Catalog
+from tracegen.ingest import Labels, read_file
+
+FIELD = Path(__file__).resolve().parents[2] / "shared" / "field-data" / "nyu-mets-lte"
+
+
+def synthetic_folder(root: Path) -> Path:
+    rng = np.random.default_rng(1)
+    root.mkdir(parents=True, exist_ok=True)
+    for i in range(27):
+        t = np.arange(4000)
+        bw = rng.gamma(2.0, 4e6, t.size).round()
+        pd.DataFrame({"t_s": t, "bandwidth_bps": bw, "segment": 0}).to_csv(root / f"f{i}.csv", index=False)
+    return root
+
+
+def best_of(repeat: int, fn) -> float:
+    times = []
+    for _ in range(repeat):
+        start = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - start)
+    return min(times)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("folder", nargs="?", type=Path, default=None)
+    ap.add_argument("--repeat", type=int, default=3)
+    args = ap.parse_args()
+    tmp = Path(tempfile.mkdtemp(prefix="tracegen-bench-"))
+    folder = args.folder or (FIELD if FIELD.is_dir() else None)
+    if folder is None:
+        print(f"note: {FIELD} is absent; using a synthetic folder", file=sys.stderr)
+        folder = synthetic_folder(tmp / "synthetic")
+    files = sorted(folder.glob("*.csv"))
+    rows = sum(sum(1 for _ in open(f)) - 1 for f in files)
+
+    ours = best_of(args.repeat, lambda: [read_file(f, "csv", Labels(), split_column="segment") for f in files])
+    ref = best_of(args.repeat, lambda: [pd.read_csv(f) for f in files])
+    tracemalloc.start()
+    [read_file(f, "csv", Labels(), split_column="segment") for f in files]
+    peak_mib = tracemalloc.get_traced_memory()[1] / 2**20
+    tracemalloc.stop()
+    counter = iter(range(10**6))
+    store = best_of(1, lambda: Catalog.open(tmp / f"cat{next(counter)}", create=True).ingest(
+        files, "csv", Labels(), split_column="segment"))
+
+    result = {"files": len(files), "rows": rows, "read_s": ours, "pandas_read_csv_s": ref,
+              "read_ratio_vs_pandas": ours / ref, "ingest_to_catalog_s": store,
+              "rows_per_s": rows / ours, "peak_traced_mib": peak_mib}
+    print(f"{'files':>24}: {len(files)}\n{'rows':>24}: {rows}")
+    print(f"{'tracegen read (best)':>24}: {ours:.3f} s ({rows / ours:,.0f} rows/s)")
+    print(f"{'pandas.read_csv (best)':>24}: {ref:.3f} s")
+    print(f"{'ratio':>24}: {ours / ref:.2f}x pandas (checks, units, provenance, sha256 included)")
+    print(f"{'ingest into catalog':>24}: {store:.3f} s")
+    print(f"{'peak traced memory':>24}: {peak_mib:.1f} MiB")
+    print(json.dumps(result))
+
+
+if __name__ == "__main__":
+    main()
