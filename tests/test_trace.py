@@ -138,7 +138,7 @@ def test_resample_rejects_bad_step():
 
 
 @settings(max_examples=60, deadline=None)
-@given(st.lists(st.floats(0.05, 3.0), min_size=2, max_size=40),
+@given(st.lists(st.floats(0.05, 3.0), min_size=2, max_size=39),
        st.lists(st.floats(0.0, 1e7), min_size=40, max_size=40),
        st.sampled_from([0.1, 0.5, 1.0, 2.5]))
 def test_resample_agrees_with_brute_force_integration(gaps, values, step):
@@ -155,4 +155,5 @@ def test_resample_agrees_with_brute_force_integration(gaps, values, step):
     counts = np.bincount(bins)
     for k, value in enumerate(r["bandwidth_bps"]):
         if counts[k] >= 0.5 * step / 1e-3 + 2 and np.isfinite(value):
-            assert value == pytest.approx(sums[k] / counts[k], rel=2e-2, abs=1e-6 * v.max() + 1e-9)
+            # the fine grid misplaces each sample boundary by up to 1 ms: allow that share of the bin
+            assert value == pytest.approx(sums[k] / counts[k], rel=1e-6, abs=(v.max() + 1e-9) * 2.5e-3 / step)
