@@ -119,3 +119,32 @@ def test_every_reader_option_has_exactly_one_flag():
             assert key in flags, f"{fmt} option {key} has no flag"
             if key != "interval_s":
                 assert flags[key] == option_flag(key)
+
+
+@pytest.mark.parametrize("fmt, name, content, needle", [
+    ("rtcp", "a.jsonl", '{"arrival_s": 1.0}\n[1, 2]\n', "a.jsonl:2"),
+    ("rtcp", "b.jsonl", '{"arrival_s": 1.0, "fraction_lost": 300}\n', "fraction_lost"),
+    # RFC 3550 6.4.1 figures: A = 0xb7108000, LSR = 0xb7052000; a DLSR of 12 s puts departure after arrival
+    ("rtcp", "c.jsonl", '{"arrival_ntp": 12992241781528592384, "lsr": 3070566400, "dlsr": 786432}\n', "dlsr"),
+    ("rtcp", "d.jsonl", "{not json\n", "d.jsonl:1"),
+    ("ping", "e.ping", "PING h (192.0.2.1) 56(84) bytes of data.\nthis is not ping output\n", "e.ping:2"),
+    ("packets", "f.pkts", "0,100\n2,100\n1,100\n", "f.pkts:3"),
+    ("packets", "g.pkts", "0,100\n1,-5\n", "g.pkts:2"),
+])
+def test_bad_input_of_every_format_changes_nothing(built, write, fmt, name, content, needle):
+    before = snapshot(built)
+    result = run("ingest", "--catalog", built, "--format", fmt, write(name, content))
+    assert result.exit_code == 2, result.output
+    assert needle in result.output and "Traceback" not in result.output
+    assert snapshot(built) == before
+
+
+def test_demo_builds_a_catalog_that_verifies(tmp_path):
+    root = tmp_path / "demo"
+    r = run("demo", "--catalog", root, "--sessions", "6", "--duration", "60s")
+    assert r.exit_code == 0, r.output
+    assert "tracegen catalog list" in r.output
+    rows = json.loads(run("catalog", "list", "--catalog", root, "--json").output)
+    assert len(rows) >= 6
+    assert {"access", "mobility"} <= set(rows[0]["tags"])
+    assert run("catalog", "verify", "--catalog", root).exit_code == 0
