@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import sys
 from pathlib import Path
 from typing import Any
@@ -31,6 +32,10 @@ class _Group(click.Group):
             ctx.exit(EXIT_USER_ERROR)
         except (click.exceptions.Exit, click.exceptions.Abort, click.ClickException):
             raise
+        except BrokenPipeError:  # the reader of our output went away (e.g. `| head`): stop quietly
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+            ctx.exit(0)
         except Exception as exc:  # a bug of ours: say so briefly, keep the traceback for --debug
             if (ctx.obj or {}).get("debug"):
                 raise
