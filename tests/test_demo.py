@@ -25,6 +25,17 @@ def full(tmp_path_factory):
     return root, report
 
 
+def test_the_demo_fits_a_model_of_its_lte_traces(full):
+    from tracegen.model import load
+
+    root, report = full
+    model = load(report.model_path)
+    assert report.model_path == root / "demo-model.json"
+    assert model.report["selection"] == ["access=lte"] and model.report["traces"] == 27
+    assert model.states[0].kind == "outage"  # the demo's failed handovers and coverage holes
+    assert "tracegen model show" in report.text()
+
+
 def _sources(root: Path) -> dict[str, bytes]:
     return snapshot(root / "demo-sources")
 
@@ -35,14 +46,15 @@ def test_same_seed_gives_the_same_bytes_and_ids(tmp_path):
     assert _sources(tmp_path / "a") == _sources(tmp_path / "b")
     assert a.added == b.added and len(a.added) == 12
     assert snapshot(tmp_path / "a" / "traces") == snapshot(tmp_path / "b" / "traces")
-    again = demo.build_demo(tmp_path / "a", seed=5, progress=False, **SMALL)  # rebuild in place
+    assert (tmp_path / "a" / "demo-model.json").read_bytes() == (tmp_path / "b" / "demo-model.json").read_bytes()
+    again = demo.build_demo(tmp_path / "a", seed=5, progress=False, fit_model=False, **SMALL)  # rebuild in place
     assert _sources(tmp_path / "a") == _sources(tmp_path / "b")
     assert again.added == () and sorted(again.present) == sorted(a.added)
 
 
 def test_another_seed_gives_other_files_and_traces(tmp_path):
-    a = demo.build_demo(tmp_path / "a", seed=5, progress=False, **SMALL)
-    b = demo.build_demo(tmp_path / "b", seed=6, progress=False, **SMALL)
+    a = demo.build_demo(tmp_path / "a", seed=5, progress=False, fit_model=False, **SMALL)
+    b = demo.build_demo(tmp_path / "b", seed=6, progress=False, fit_model=False, **SMALL)
     sa, sb = _sources(tmp_path / "a"), _sources(tmp_path / "b")
     assert sorted(sa) == sorted(sb)  # the same plan of files ...
     assert all(sa[k] != sb[k] for k in sa)  # ... with other contents, every one

@@ -301,6 +301,72 @@ def stats(ctx: click.Context, where: tuple[str, ...], by: str | None, as_json: b
                    f"{'-' if out is None else f'{out:.1%}':>6}")
 
 
+# --- fit and model -------------------------------------------------------------------------------
+def _parse_states(text: str) -> list[int]:
+    """'3', '2..8' or '2,3,5' -> state counts."""
+    try:
+        if ".." in text:
+            lo, hi = (int(v) for v in text.split("..", 1))
+            values = list(range(lo, hi + 1))
+        else:
+            values = [int(v) for v in text.split(",")]
+    except ValueError:
+        raise click.BadParameter(f"'{text}' is not a count or a range", param_hint="--states") from None
+    if not values or min(values) < 1:
+        raise click.BadParameter(f"'{text}' must name counts >= 1 (e.g. 3 or 2..8)", param_hint="--states")
+    return values
+
+
+@cli.command("fit")
+@_where
+@click.option("--states", default="2..8", show_default=True, help="Level states: a count (3), a range (2..8) or a list.")
+@click.option("--step", default=None, help="Fit at this step, e.g. 1s (default: the traces' own step).")
+@click.option("--with-rtt", is_flag=True, help="Model log-RTT jointly with log-bandwidth (full covariance per state).")
+@click.option("--restarts", default=3, show_default=True, help="Seeded EM restarts per state count; the best wins.")
+@click.option("--max-iter", default=100, show_default=True, help="EM iterations per restart.")
+@click.option("--criterion", type=click.Choice(["full-bic", "hmm-bic"]), default="full-bic", show_default=True,
+              help="How the state count is chosen.")
+@click.option("--seed", default=0, show_default=True, help="Seed of the restarts.")
+@click.option("--out", "out", type=click.Path(dir_okay=False, path_type=Path), required=True, help="Model file to write (JSON).")
+@click.option("--force", is_flag=True, help="Replace --out if it exists.")
+@_catalog_option
+@click.pass_context
+def fit_cmd(ctx: click.Context, where: tuple[str, ...], states: str, step: str | None, with_rtt: bool, restarts: int,
+            max_iter: int, criterion: str, seed: int, out: Path, force: bool, catalog_path: Path | None) -> None:
+    """Fit a path model to the selected catalog traces and write it as JSON."""
+    from .fit import fit
+    from .model import ModelError
+    from .units import parse_duration_s
+
+    counts = _parse_states(states)
+    step_s = None if step is None else parse_duration_s(step, "--step")
+    if out.exists() and not force:
+        raise ModelError("exists already", path=out, hint="pass --force to replace it")
+    cat = _open(ctx, catalog_path)
+    traces = list(cat.traces(where))
+    model = fit(traces, states=counts, step_s=step_s, with_rtt=with_rtt, restarts=restarts, seed=seed,
+                max_iter=max_iter, criterion=criterion, selection=list(where))
+    model.save(out)
+    click.echo(model.summary_text())
+    click.echo(f"wrote {out}")
+
+
+@cli.group(cls=_Group)
+def model() -> None:
+    """Look at fitted model files."""
+
+
+@model.command("show")
+@click.argument("path", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="Print the validated model as JSON.")
+def model_show(path: Path, as_json: bool) -> None:
+    """Print a readable summary of a model file (it is validated first)."""
+    from .model import load
+
+    m = load(path)
+    click.echo(m.to_json().rstrip() if as_json else m.summary_text())
+
+
 # --- demo ------------------------------------------------------------------------------------------
 @cli.command()
 @click.option("--seed", default=7, show_default=True, help="Seed of the invented world.")

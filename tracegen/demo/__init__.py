@@ -38,6 +38,8 @@ class DemoReport:
     counts: Mapping[str, Mapping[str, int]]
     seed: int
     duration_s: float
+    model_path: Path | None = None
+    model_summary: str = ""
 
     @property
     def trace_ids(self) -> tuple[str, ...]:
@@ -55,14 +57,19 @@ class DemoReport:
                f"Catalog {self.root}: {len(self.added)} traces added, {len(self.present)} already there."]
         for tag, values in self.counts.items():
             out.append(f"  {tag}: " + ", ".join(f"{v} {c}" for v, c in values.items()))
+        if self.model_path is not None:
+            out += [f"Fitted a path model to the LTE traces: {self.model_path}", self.model_summary]
         example = self.trace_ids[0] if self.trace_ids else "ID"
         out += ["What to try next:", f"  tracegen catalog list{flag}", f"  tracegen catalog stats --by access{flag}",
                 f"  tracegen catalog show {example}{flag}", f"  tracegen catalog verify{flag}"]
+        if self.model_path is not None:
+            out += [f"  tracegen model show {self.model_path}",
+                    f"  tracegen fit{flag} --where access=wifi --out wifi-model.json"]
         return "\n".join(out)
 
 
 def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: float = 300,
-               progress: bool | None = None) -> DemoReport:
+               progress: bool | None = None, fit_model: bool = True) -> DemoReport:
     """Simulate the fleet, write its files under ``root/demo-sources`` and ingest them into the catalog at ``root``."""
     from ..catalog import Catalog
     from ..ingest import Labels
@@ -90,5 +97,14 @@ def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: flo
                 counts.setdefault(tag, {})
                 counts[tag][value] = counts[tag].get(value, 0) + len(rep.added) + len(rep.present)
     counts = {t: dict(sorted(v.items())) for t, v in counts.items()}
+    model_path, summary = None, ""
+    if fit_model and cat.ids(["access=lte"]):
+        from ..fit import fit
+
+        where = ["access=lte"]
+        model = fit(list(cat.traces(where)), states=range(2, 7), restarts=2, seed=seed, selection=where,
+                    progress=progress)
+        model_path = model.save(root / "demo-model.json")
+        summary = model.summary_text()
     return DemoReport(root, sources, {k: tuple(p.name for p in v) for k, v in sorted(written.items())},
-                      tuple(added), tuple(present), counts, seed, float(duration_s))
+                      tuple(added), tuple(present), counts, seed, float(duration_s), model_path, summary)

@@ -44,11 +44,11 @@ def _wifi_sites() -> dict[str, np.ndarray]:
 ACCESS = {
     "lte": dict(freq_hz=2.0e9, bw_hz=20e6, noise_dl_dbm=-174 + 73.0 + 7.0, noise_ul_dbm=-174 + 73.0 + 3.0,
                 ue_eirp_dbm=23.0 + 13.0, sigma_db=8.0, decorr_m=50.0, eta=0.6, se_dl=4.4, se_ul=2.5,
-                hyst_db=3.0, ttt_s=0.32, interrupt_s=(0.05, 0.15), fail=(0.015, 0.35), fail_out_s=(2.0, 6.0),
+                hyst_db=4.0, ttt_s=0.64, interrupt_s=(0.35, 0.9), fail=(0.015, 0.35), fail_out_s=(2.0, 6.0),
                 qout_db=-8.0, m_freq=8.0, base_rtt_ms=(14.0, 32.0), sched_ms=9.0, users=(2.0, 3.0)),
     "wifi": dict(freq_hz=5.2e9, bw_hz=40e6, noise_dl_dbm=-174 + 76.0 + 7.0, noise_ul_dbm=-174 + 76.0 + 7.0,
                  ue_eirp_dbm=15.0 + 3.0, sigma_db=5.0, decorr_m=12.0, eta=0.75, se_dl=7.5, se_ul=7.5,
-                 hyst_db=6.0, ttt_s=1.28, interrupt_s=(0.1, 0.4), fail=(0.03, 0.0), fail_out_s=(2.0, 5.0),
+                 hyst_db=6.0, ttt_s=1.28, interrupt_s=(0.5, 1.2), fail=(0.03, 0.0), fail_out_s=(2.0, 5.0),
                  qout_db=-2.0, m_freq=4.0, base_rtt_ms=(3.0, 8.0), sched_ms=2.0, users=(2.0, 2.0)),
 }
 DISTRICTS = {"Saltmarket": (0, 1050, 0, 1050, (420, 300)), "Tinker Quay": (1050, 2100, 0, 1050, (1600, 500)),
@@ -144,7 +144,11 @@ def simulate_session(plan: tuple, index: int, duration_s: float, rng: np.random.
     d = np.sqrt(np.sum((xy[:, None, :] - sites["xy"][None]) ** 2, axis=2) + (sites["height_m"] - ue_h) ** 2)
     loss_db = log_distance_path_loss_db(d, sites["exponent"][None], p["freq_hz"])
     loss_db = loss_db + np.where(sites["grid"], 14.0, 0.0) * (route == "river")  # river embankment blocks the grid
-    loss_db = loss_db + gudmundson_shadowing_db(arc, m, p["sigma_db"], p["decorr_m"], rng)
+    # shadowing is half shared by all sites (the device's own surroundings) and half per link: an
+    # inter-site correlation of 0.5, the usual assumption in system-level studies (from memory)
+    shared = gudmundson_shadowing_db(arc, 1, p["sigma_db"], p["decorr_m"], rng)
+    own = gudmundson_shadowing_db(arc, m, p["sigma_db"], p["decorr_m"], rng)
+    loss_db = loss_db + np.sqrt(0.5) * shared + np.sqrt(0.5) * own
     loss_db = loss_db + _ar1(rng, n, m, 10.0 / RADIO_STEP_S, 1.0)  # people and vehicles moving nearby
     rsrp = sites["eirp_dbm"] - loss_db
 
@@ -166,7 +170,7 @@ def simulate_session(plan: tuple, index: int, duration_s: float, rng: np.random.
     # handovers: a loop over the few handover events, each scanning the rest of the session vectorised
     ttt, t = int(round(p["ttt_s"] / RADIO_STEP_S)), np.arange(n) * RADIO_STEP_S
     serving, avail, down, extra_rtt = np.empty(n, np.int64), np.ones(n), np.zeros(n, bool), np.zeros(n)
-    s, i, handovers, failures = int(np.argmax(rsrp[0])), 0, [], []
+    s, i, handovers, failures, interruptions = int(np.argmax(rsrp[0])), 0, [], [], []
     while True:
         serving[i:] = s
         nxt = a3_next(rsrp, i, s, p["hyst_db"], ttt)
@@ -189,6 +193,7 @@ def simulate_session(plan: tuple, index: int, duration_s: float, rng: np.random.
             avail[span] *= 1.0 - overlap / RADIO_STEP_S
             extra_rtt[j:j + SUB] += 500.0 * gap  # packets held during the interruption wait half of it on average
             handovers.append(round(t[j], 3))
+            interruptions.append([round(t[j], 3), float(np.floor((t[j] + gap) * 1000) / 1000), "handover interruption"])
             s, i = target, j
 
     conn, cell, rows = np.flatnonzero(serving >= 0), np.maximum(serving, 0), np.arange(n)
@@ -241,6 +246,7 @@ def simulate_session(plan: tuple, index: int, duration_s: float, rng: np.random.
     keep = np.concatenate(([True], visited[1:] != visited[:-1])) if visited.size else np.zeros(0, bool)
     outages = [[round(t[a], 3), round(t[b - 1] + RADIO_STEP_S, 3),
                 "coverage" if coverage[a:b].all() else "handover failure"] for a, b in _runs(down)]
+    outages = sorted(outages + interruptions)
     ids = {"robot": [f"QR-{k:03d}" for k in (101, 104, 117, 122, 130, 146, 152, 168)],
            "cart": [f"QC-{k:02d}" for k in (3, 8, 11, 19)]}[device]
     extra = {"report_offset_s": rng.uniform(0.3, 0.7, n_sec), "dlsr_units": rng.integers(3000, 60000, n_sec),

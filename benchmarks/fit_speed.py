@@ -1,0 +1,83 @@
+"""Fit cost: tracegen.fit against plain hmmlearn GaussianHMM with the same EM iterations, in one run.
+
+Usage: python benchmarks/fit_speed.py [--hours 100] [--states 2..6] [--restarts 3] [--iterations 20]
+Data: --hours of 1 s samples from a generated three-level semi-Markov process (60 traces). Both sides run
+exactly --iterations EM iterations (tolerance 0) for every state count and restart; the reference is the
+bare hmmlearn fit (its own initialisation), the overhead of ours is initialisation, decoding, dwell, AR,
+loss and event fits. Prints a table and a last line of JSON with the ratio (target: at most 2).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import time
+import tracemalloc
+
+import numpy as np
+from hmmlearn.hmm import GaussianHMM
+
+import tracegen
+from tracegen import Trace
+
+
+def make_traces(hours: float, n_traces: int = 60, seed: int = 0) -> list[Trace]:
+    rng = np.random.default_rng(seed)
+    per = int(hours * 3600 / n_traces)
+    levels = np.log([1e6, 4e6, 12e6])
+    out = []
+    for _ in range(n_traces):
+        k = per // 10 + 10
+        state = rng.integers(0, 3, k)
+        dwell = np.maximum(1, rng.gamma(4.0, 6.0, k).round().astype(int))
+        s = np.repeat(state, dwell)[:per]
+        bw = np.exp(levels[s] + 0.12 * rng.standard_normal(s.size))
+        out.append(Trace.from_columns(np.arange(s.size, dtype=float), bandwidth_bps=bw))
+    return out
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--hours", type=float, default=100.0)
+    ap.add_argument("--states", default="2..6")
+    ap.add_argument("--restarts", type=int, default=3)
+    ap.add_argument("--iterations", type=int, default=20)
+    args = ap.parse_args()
+    lo, hi = (int(v) for v in args.states.split(".."))
+    counts = range(lo, hi + 1)
+    traces = make_traces(args.hours)
+    x = np.concatenate([np.log(t["bandwidth_bps"]) for t in traces])[:, None]
+    lengths = [len(t) for t in traces]
+
+    tracemalloc.start()
+    start = time.perf_counter()
+    model = tracegen.fit(traces, states=counts, restarts=args.restarts, max_iter=args.iterations, tol=0.0,
+                         progress=False)
+    ours_s = time.perf_counter() - start
+    ours_peak = tracemalloc.get_traced_memory()[1] / 2**20
+    tracemalloc.stop()
+
+    tracemalloc.start()
+    start = time.perf_counter()
+    for k in counts:
+        for r in range(args.restarts):
+            GaussianHMM(n_components=k, covariance_type="full", n_iter=args.iterations, tol=0.0,
+                        random_state=r).fit(x, lengths)
+    ref_s = time.perf_counter() - start
+    ref_peak = tracemalloc.get_traced_memory()[1] / 2**20
+    tracemalloc.stop()
+
+    result = {"samples": int(x.shape[0]), "hours": args.hours, "state_counts": list(counts),
+              "restarts": args.restarts, "iterations": args.iterations, "tracegen_fit_s": ours_s,
+              "hmmlearn_fit_s": ref_s, "ratio": ours_s / ref_s, "tracegen_peak_mib": ours_peak,
+              "hmmlearn_peak_mib": ref_peak, "chosen_level_states": model.report["level_states"]}
+    print(f"{x.shape[0]} samples ({args.hours:g} h), states {lo}..{hi}, {args.restarts} restarts, "
+          f"{args.iterations} EM iterations each")
+    print(f"  tracegen.fit        {ours_s:8.1f} s   peak {ours_peak:7.1f} MiB   chose {model.report['level_states']} levels")
+    print(f"  plain hmmlearn      {ref_s:8.1f} s   peak {ref_peak:7.1f} MiB")
+    print(f"  ratio               {ours_s / ref_s:8.2f}x (target <= 2)")
+    print(json.dumps(result))
+
+
+if __name__ == "__main__":
+    main()
