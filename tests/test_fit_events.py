@@ -14,6 +14,7 @@ Closed forms used (from memory):
 from __future__ import annotations
 
 import json
+from pathlib import Path
 import math
 
 import numpy as np
@@ -267,21 +268,29 @@ def _matched(found: np.ndarray, truth: np.ndarray, tol_s: float = 2.0) -> int:
     return hits
 
 
-@pytest.fixture(scope="module")
-def demo(tmp_path_factory):
-    root = tmp_path_factory.mktemp("demo")
-    build_demo(root, seed=7, sessions=36, duration_s=300, progress=False, fit_model=False)
-    truth = json.loads((root / "demo-sources" / "truth.json").read_text())["files"]
-    out = []
-    for tr in Catalog.open(root).traces():
-        f = truth[tr.provenance["file"]]
-        shift = f["first_sample_s"]  # truth is in session seconds; a trace's t_s starts at its first sample
-        out.append({"file": tr.provenance["file"], "t_s": np.asarray(tr["t_s"]),
-                    "bandwidth_bps": np.asarray(tr["bandwidth_bps"]), "rtt_ms": np.asarray(tr["rtt_ms"]),
-                    "cell": tr.data.get("cell"),
-                    "handovers": np.asarray(f["handovers_s"], float) - shift,
-                    "failures": np.asarray(f["handover_failures_s"], float) - shift})
+def _demo_columns(seed: int) -> list[dict]:
+    """The demo catalog of ``seed`` as columns per trace, with its true handover times."""
+    import tempfile
+
+    with tempfile.TemporaryDirectory() as tmp:
+        root = Path(tmp)
+        build_demo(root, seed=seed, sessions=36, duration_s=300, progress=False, fit_model=False)
+        truth = json.loads((root / "demo-sources" / "truth.json").read_text())["files"]
+        out = []
+        for tr in Catalog.open(root).traces():
+            f = truth[tr.provenance["file"]]
+            shift = f["first_sample_s"]  # truth is in session seconds; a trace's t_s starts at its first sample
+            out.append({"file": tr.provenance["file"], "t_s": np.asarray(tr["t_s"]),
+                        "bandwidth_bps": np.asarray(tr["bandwidth_bps"]), "rtt_ms": np.asarray(tr["rtt_ms"]),
+                        "cell": tr.data.get("cell"),
+                        "handovers": np.asarray(f["handovers_s"], float) - shift,
+                        "failures": np.asarray(f["handover_failures_s"], float) - shift})
     return out
+
+
+@pytest.fixture(scope="module")
+def demo():
+    return _demo_columns(7)
 
 
 def _score(demo, truth_keys, where=lambda d: True, **detection):
@@ -305,6 +314,16 @@ def _score(demo, truth_keys, where=lambda d: True, **detection):
 def test_demo_handovers_detected_without_cell_labels(demo):
     precision, recall = _score(demo, ("handovers", "failures"), where=lambda d: not d["file"].endswith(".jsonl"))
     assert precision >= 0.9 and recall >= 0.9, (precision, recall)
+
+
+def test_demo_handover_detection_holds_on_other_seeds():
+    # Seeds 7, 11 and 23 pooled (the logger traces, cell column dropped): precision 0.87, recall 0.85
+    # with the defaults; the 0.9 reached on seed 7 alone does not fully carry over.
+    pooled = []
+    for seed in (7, 11, 23):
+        pooled += _demo_columns(seed)
+    precision, recall = _score(pooled, ("handovers", "failures"), where=lambda d: not d["file"].endswith(".jsonl"))
+    assert precision >= 0.84 and recall >= 0.84, (precision, recall)
 
 
 def test_demo_rtcp_handovers_are_found_more_often_than_not(demo):

@@ -166,24 +166,27 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
     if len(prep.features) == 0:
         raise TracegenError("the selection has no sample with known, non-zero bandwidth", field="selection")
     candidates: dict[int, Candidate] = {}
-    table = []
+    table: list[dict[str, Any]] = []
+    skipped: list[dict[str, Any]] = []
     with bar(counts, label=f"fitting {len(counts)} state counts", enabled=progress) as items:
         for k in items:
             try:
                 hmm = fit_hmm(prep, k, restarts=restarts, seed=seed, max_iter=max_iter, tol=tol)
                 cand = _candidate(prep, hmm, with_outage, max_ar_order)
-            except TracegenError:
+            except TracegenError as exc:
                 if len(counts) == 1:
                     raise
-                continue  # too many states for this selection: the table says so
+                skipped.append({"states": k, "reason": str(exc)})  # e.g. too many states for the data
+                continue
             candidates[k] = cand
             table.append({"states": k, "hmm_loglik": hmm.loglik, "hmm_bic": hmm.bic,
                           "full_loglik": cand.full_loglik, "full_bic": cand.full_bic, "parameters": cand.n_params,
                           "iterations": hmm.n_iter, "converged": hmm.converged,
                           "restart_logliks": list(hmm.restart_logliks)})
     if not candidates:
-        raise TracegenError(f"no state count in {list(counts)} could be fitted to {len(prep.features)} level samples",
-                            field="states", hint="ask for fewer states or select more data")
+        reasons = "; ".join(f"{row['states']}: {row['reason']}" for row in skipped)
+        raise TracegenError(f"no state count in {list(counts)} could be fitted to {len(prep.features)} level "
+                            f"samples ({reasons})", field="states", hint="ask for fewer states or select more data")
     key = "full_bic" if criterion == "full-bic" else "hmm_bic"
     chosen = min(table, key=lambda row: row[key])["states"]
     cand = candidates[chosen]
@@ -221,7 +224,7 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
         "hours": prep.n_known * prep.step_s / 3600.0, "criterion": criterion, "level_states": chosen,
         "outage_state": with_outage, "selection_table": table, "restarts": restarts, "max_iter": max_iter,
         "seed": seed, "loglik": cand.hmm.loglik, "full_loglik": cand.full_loglik,
-        "state_counts_tried": list(counts),
+        "state_counts_tried": list(counts), "state_counts_skipped": skipped,
         "warnings": [] if cand.hmm.converged else [f"EM did not converge in {max_iter} iterations for "
                                                    f"{chosen} states; raise --max-iter"],
     }
