@@ -1,0 +1,379 @@
+"""A bottleneck queue: offered load in, queueing delay, drops and delivered rate out.
+
+Fluid model on the trace's time grid: per step k, ``in_k = offered_k·step/8`` bytes arrive and
+``capacity_k·step/8`` can leave; ``backlog_{k+1} = clip(backlog_k + in_k − drops_k − served_k, 0, buffer)``.
+Drop-tail is a two-sided reflection on [0, buffer], computed exactly and vectorised: between boundary
+hits the walk is a one-sided (Lindley) reflection, ``b0 + S − min(0, min.accumulate(b0 + S))`` at the
+floor or its mirror at the ceiling, so a Python loop runs once per boundary alternation, not per step.
+RED and CoDel follow the same path while they are idle (RED's average below min_th, CoDel's sojourn
+below target) and switch to a per-step loop while they act: their state (the averaged queue, the drop
+schedule) feeds back into the backlog step by step, so those stretches are sequential.
+``lindley_waits`` is the packet-level recursion for an infinite buffer.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.signal import lfilter
+
+from ..errors import TracegenError
+
+_SECTION = "bottleneck"
+POLICIES = ("drop-tail", "red", "codel")
+MAX_QUEUE_MS = 60_000.0  # delay reported for a backlog on a zero-capacity step when the mean capacity is 0
+_FAST_WINDOW = 4096      # first window of the vectorised (idle-AQM) path; doubles while the AQM stays idle
+_LOOP_CHUNK = 4096       # steps converted to Python floats at a time for the AQM loop
+_SHORT_PHASE = 32        # drop-tail phases shorter than this (x2) switch to stepping ...
+_SHORT_RUN = 512         # ... this many steps directly
+_SNAP_REL = 1e-9         # backlogs below this share of the largest bytes per step count as empty
+_LINDLEY_BLOCK = 4096    # packets per block of lindley_waits (bounds rounding, see there)
+_CALM_STEPS = 64         # idle AQM steps in a row before the loop hands back to the vectorised path
+
+
+def _number(name: str, value: object, low: float, high: float = math.inf, *, low_open: bool = False,
+            high_open: bool = False) -> None:
+    ok = isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+    if ok:
+        ok = (value > low if low_open else value >= low) and (value < high if high_open else value <= high)
+    if not ok:
+        lo = f"> {low:g}" if low_open else f">= {low:g}"
+        hi = "" if high == math.inf else (f" and < {high:g}" if high_open else f" and <= {high:g}")
+        raise TracegenError(f"must be {lo}{hi}, got {value!r}", field=f"{_SECTION}.{name}")
+
+
+@dataclass(frozen=True)
+class Bottleneck:
+    """A queue of ``buffer_bytes`` or ``buffer_ms`` (at the mean capacity; give one) under ``policy``.
+
+    RED (Floyd & Jacobson 1993; defaults from memory of the paper's simulations: max_p = 1/50,
+    w_q = 0.002 per packet, max_th = 3·min_th): thresholds are fractions of the buffer; the average is
+    an EWMA per step with weight 1 − (1 − w_q)^P, P the packets per step at the mean capacity.
+    CoDel (Nichols & Jacobson 2012): target 5 ms, interval 100 ms. ``packet_bytes`` sizes RED's packet
+    count, CoDel's drops (one packet each) and CoDel's "less than one packet queued" rule.
+    """
+
+    buffer_bytes: float | None = None
+    buffer_ms: float | None = None
+    policy: str = "drop-tail"
+    red_min_th_frac: float = 0.25
+    red_max_th_frac: float = 0.75
+    red_max_p: float = 0.02
+    red_weight: float = 0.002
+    codel_target_ms: float = 5.0
+    codel_interval_ms: float = 100.0
+    packet_bytes: float = 1500.0
+
+    def __post_init__(self) -> None:
+        self.validate()
+
+    def validate(self) -> None:
+        """Raise TracegenError naming the first field that is out of range."""
+        if (self.buffer_bytes is None) == (self.buffer_ms is None):
+            raise TracegenError("give exactly one of buffer_bytes and buffer_ms", field=_SECTION,
+                                hint="e.g. buffer_ms = 100")
+        name = "buffer_bytes" if self.buffer_bytes is not None else "buffer_ms"
+        _number(name, getattr(self, name), 0.0, low_open=True)
+        if self.policy not in POLICIES:
+            close = difflib.get_close_matches(str(self.policy), POLICIES, n=1)
+            hint = f"did you mean '{close[0]}'?" if close else f"use one of: {', '.join(POLICIES)}"
+            raise TracegenError(f"unknown policy {self.policy!r}", field=f"{_SECTION}.policy", hint=hint)
+        _number("red_min_th_frac", self.red_min_th_frac, 0.0, 1.0, high_open=True)
+        _number("red_max_th_frac", self.red_max_th_frac, 0.0, 1.0, low_open=True)
+        if not self.red_min_th_frac < self.red_max_th_frac:
+            raise TracegenError(f"red_min_th_frac must be < red_max_th_frac, got {self.red_min_th_frac} >= "
+                                f"{self.red_max_th_frac}", field=f"{_SECTION}.red_min_th_frac")
+        _number("red_max_p", self.red_max_p, 0.0, 1.0)
+        _number("red_weight", self.red_weight, 0.0, 1.0, low_open=True)
+        _number("codel_target_ms", self.codel_target_ms, 0.0, low_open=True)
+        _number("codel_interval_ms", self.codel_interval_ms, 0.0, low_open=True)
+        _number("packet_bytes", self.packet_bytes, 0.0, low_open=True)
+
+    def buffer_bytes_for(self, capacity_bps: np.ndarray) -> float:
+        """The buffer in bytes: ``buffer_bytes``, or ``buffer_ms`` worth of the mean capacity."""
+        if self.buffer_bytes is not None:
+            return float(self.buffer_bytes)
+        return float(self.buffer_ms) / 1000.0 * float(np.mean(capacity_bps)) / 8.0
+
+
+@dataclass(frozen=True)
+class QueueResult:
+    """Per-step queue outputs (arrays of the input length) and the buffer used."""
+
+    queue_ms: np.ndarray         # backlog at the end of the step / the step's capacity
+    drop_share: np.ndarray       # dropped bytes / offered bytes in the step (0 when nothing is offered)
+    delivered_bps: np.ndarray    # bytes that left the queue in the step, as a rate
+    backlog_bytes: np.ndarray    # backlog at the end of the step
+    dropped_bytes: np.ndarray    # AQM drops + overflow in the step
+    buffer_bytes: float
+    avg_queue_bytes: np.ndarray | None = None  # RED's averaged queue after the step's update (RED only)
+
+
+def lindley_waits(service_s: np.ndarray, interarrival_s: np.ndarray) -> np.ndarray:
+    """Waiting times in queue of packets 0..n−1 at an infinite-buffer FIFO server, W_0 = 0.
+
+    ``service_s[i]`` is packet i's service time, ``interarrival_s[i]`` the gap between the arrivals of
+    packets i−1 and i (``interarrival_s[0]`` is not used). W_n = max(0, W_{n−1} + service_{n−1} −
+    interarrival_n), solved as C_n − min_{k<=n} C_k with C the cumulative sum of the increments (C_0 = 0).
+    Applied per block of 4096 packets from the carried wait (the same identity from W_start), so the
+    cumulative sums stay small and rounding does not grow with the series length.
+    """
+    s = np.asarray(service_s, dtype=float)
+    a = np.asarray(interarrival_s, dtype=float)
+    if s.ndim != 1 or s.shape != a.shape:
+        raise TracegenError(f"service_s and interarrival_s must be 1-D of one length, got {s.shape} and {a.shape}",
+                            field="interarrival_s")
+    if s.size == 0:
+        return np.zeros(0)
+    x = s[:-1] - a[1:]
+    out = np.empty(s.size)
+    out[0] = w = 0.0
+    for i in range(0, x.size, _LINDLEY_BLOCK):
+        c = w + np.cumsum(x[i:i + _LINDLEY_BLOCK])
+        part = c - np.minimum(np.minimum.accumulate(c), 0.0)
+        out[i + 1:i + 1 + part.size] = part
+        w = float(part[-1])
+    return out
+
+
+def _reflect(x: np.ndarray, b0: float, top: float) -> np.ndarray:
+    """Backlog after each step of b_{k+1} = min(top, max(0, b_k + x_k)) from b0, exact and vectorised.
+
+    One-sided reflection at the floor until the walk would pass ``top`` (there it is clipped to top), then
+    at the ceiling until it would pass 0, and so on: one vectorised pass per boundary alternation. When
+    alternations come every few steps, a plain loop over the next _SHORT_RUN steps is cheaper than the
+    passes, so that stretch is stepped directly (same recursion).
+    """
+    n = x.size
+    out = np.empty(n)
+    if top <= 0.0:
+        out[:] = 0.0
+        return out
+    i, b, at_top, w = 0, float(b0), b0 >= top, 1024
+    while i < n:
+        if w < _SHORT_PHASE:
+            end = min(i + _SHORT_RUN, n)
+            vals = x[i:end].tolist()
+            for m, v in enumerate(vals):
+                b += v
+                b = top if b > top else (0.0 if b < 0.0 else b)
+                vals[m] = b
+            out[i:end] = vals
+            i, at_top, w = end, b >= top, 1024
+            continue
+        seg = x[i:i + w]
+        p = b + np.cumsum(seg)
+        if at_top:
+            path = p - np.maximum(np.maximum.accumulate(p) - top, 0.0)
+            hits = path < 0.0
+        else:
+            path = p - np.minimum(np.minimum.accumulate(p), 0.0)
+            hits = path > top
+        h = int(np.argmax(hits))
+        if not hits[h]:
+            out[i:i + seg.size] = path
+            b = float(path[-1])
+            i += seg.size
+            w *= 2
+            continue
+        out[i:i + h] = path[:h]
+        b = 0.0 if at_top else top
+        out[i + h] = b
+        at_top = not at_top
+        i += h + 1
+        w = 2 * (h + 1)
+    return np.clip(out, 0.0, top, out=out)
+
+
+def _check_inputs(capacity_bps: np.ndarray, offered_bps: np.ndarray, step_s: float) -> tuple[np.ndarray, np.ndarray]:
+    c = np.asarray(capacity_bps, dtype=float)
+    o = np.asarray(offered_bps, dtype=float)
+    if c.ndim != 1 or c.size == 0 or c.shape != o.shape:
+        raise TracegenError(f"capacity_bps and offered_bps must be non-empty 1-D of one length, got {c.shape} and "
+                            f"{o.shape}", field="offered_bps")
+    for name, v in (("capacity_bps", c), ("offered_bps", o)):
+        bad = ~(np.isfinite(v) & (v >= 0))
+        if bad.any():
+            raise TracegenError(f"must be finite and >= 0, got {v[bad][0]} at step {int(np.argmax(bad))}",
+                                field=name)
+    if not (isinstance(step_s, (int, float)) and math.isfinite(step_s) and step_s > 0):
+        raise TracegenError(f"must be > 0, got {step_s}", field="step_s")
+    return c, o
+
+
+class _Aqm:
+    """RED or CoDel on the grid: vectorised while idle, a per-step loop while acting."""
+
+    def __init__(self, bn: Bottleneck, c_bps: np.ndarray, in_b: np.ndarray, cap_b: np.ndarray, top: float,
+                 step_s: float) -> None:
+        self.bn, self.c, self.inb, self.capb, self.top, self.step = bn, c_bps, in_b, cap_b, top, step_s
+        self.x = in_b - cap_b
+        n = c_bps.size
+        self.b_end = np.empty(n)
+        self.aqm = np.zeros(n)
+        self.red = bn.policy == "red"
+        self.avg_out = np.empty(n) if self.red else None
+        if self.red:
+            packets = float(np.mean(c_bps)) * step_s / 8.0 / bn.packet_bytes
+            self.w = float(-np.expm1(packets * np.log1p(-bn.red_weight))) if bn.red_weight < 1 else 1.0
+            self.min_th = bn.red_min_th_frac * top
+            self.max_th = bn.red_max_th_frac * top
+        self.avg = 0.0
+        # CoDel state (times in s); first_above < 0 means "not above target"
+        self.target_s = bn.codel_target_ms / 1000.0
+        self.interval_s = bn.codel_interval_ms / 1000.0
+        self.first_above, self.dropping, self.count, self.drop_next = -1.0, False, 0, -math.inf
+
+    def run(self, force_loop: bool = False) -> None:
+        n, k, b, w = self.c.size, 0, 0.0, _FAST_WINDOW
+        while k < n:
+            if not force_loop:
+                h, engaged = self._fast(k, b, w)
+                if h > k:
+                    b = float(self.b_end[h - 1])
+                k = h
+                if not engaged:
+                    w *= 2
+                    continue
+                w = _FAST_WINDOW
+            k, b = self._loop(k, b, force_loop)
+
+    def _fast(self, k: int, b: float, w: int) -> tuple[int, bool]:
+        """Drop-tail from step k while the AQM stays idle: (first step it engages or the window's end, engaged)."""
+        end = min(k + w, self.c.size)
+        path = _reflect(self.x[k:end], b, self.top)
+        b_start = np.concatenate([[b], path[:-1]])
+        if self.red:
+            avg, _ = lfilter([self.w], [1.0, -(1.0 - self.w)], b_start, zi=[(1.0 - self.w) * self.avg])
+            engaged = avg >= self.min_th
+        else:
+            engaged = (b_start >= self.bn.packet_bytes) & (b_start * 8.0 >= self.target_s * self.c[k:end])
+        hit = bool(engaged.any())
+        h = int(np.argmax(engaged)) if hit else end - k
+        self.b_end[k:k + h] = path[:h]
+        if self.red and h > 0:
+            self.avg_out[k:k + h] = avg[:h]
+            self.avg = float(avg[h - 1])
+        return k + h, hit
+
+    def _loop(self, k: int, b: float, force_loop: bool) -> tuple[int, float]:
+        """Per-step AQM from step k until it has been idle for _CALM_STEPS steps (or the end)."""
+        n, top, step = self.c.size, self.top, self.step
+        calm = 0
+        while k < n:
+            end = min(k + _LOOP_CHUNK, n)
+            inb, capb, c = self.inb[k:end].tolist(), self.capb[k:end].tolist(), self.c[k:end].tolist()
+            ends, drops, avgs = [0.0] * (end - k), [0.0] * (end - k), [0.0] * (end - k)
+            if self.red:
+                w, avg, lo, hi, max_p = self.w, self.avg, self.min_th, self.max_th, self.bn.red_max_p
+                for i in range(end - k):
+                    avg = (1.0 - w) * avg + w * b
+                    if avg < lo:
+                        p = 0.0
+                        calm += 1
+                    else:
+                        p = max_p * (avg - lo) / (hi - lo) if avg < hi else 1.0
+                        calm = 0
+                    d = p * inb[i]
+                    b = b + inb[i] - d - capb[i]
+                    b = top if b > top else (0.0 if b < 0.0 else b)
+                    ends[i], drops[i], avgs[i] = b, d, avg
+                    if calm >= _CALM_STEPS and not force_loop:
+                        end = k + i + 1
+                        break
+                self.avg = avg
+            else:
+                pkt, target, interval = self.bn.packet_bytes, self.target_s, self.interval_s
+                first_above, dropping, count, drop_next = self.first_above, self.dropping, self.count, self.drop_next
+                for i in range(end - k):
+                    t0 = (k + i) * step
+                    t1 = t0 + step
+                    n_drop = 0
+                    if b < pkt or b * 8.0 < target * c[i]:
+                        first_above, dropping = -1.0, False
+                        calm += 1
+                    else:
+                        calm = 0
+                        if first_above < 0.0:
+                            first_above = t0 + interval
+                        ok_from = t0 if t0 > first_above else first_above
+                        if ok_from < t1:
+                            if not dropping:
+                                count = count - 2 if (count > 2 and ok_from - drop_next < interval) else 1
+                                dropping = True
+                                n_drop = 1
+                                drop_next = ok_from + interval / math.sqrt(count)
+                            while drop_next < t1:
+                                n_drop += 1
+                                count += 1
+                                drop_next += interval / math.sqrt(count)
+                    room = b + inb[i] - capb[i]
+                    d = n_drop * pkt
+                    if d > room:
+                        d = room if room > 0.0 else 0.0
+                    b = room - d
+                    b = top if b > top else (0.0 if b < 0.0 else b)
+                    ends[i], drops[i] = b, d
+                    if calm >= _CALM_STEPS and not force_loop:
+                        end = k + i + 1
+                        break
+                self.first_above, self.dropping, self.count, self.drop_next = first_above, dropping, count, drop_next
+            m = end - k
+            self.b_end[k:end] = ends[:m]
+            self.aqm[k:end] = drops[:m]
+            if self.red:
+                self.avg_out[k:end] = avgs[:m]
+            k = end
+            if calm >= _CALM_STEPS and not force_loop:
+                break
+        return k, b
+
+
+def queue(capacity_bps: np.ndarray, offered_bps: np.ndarray, step_s: float, bn: Bottleneck,
+          rng: np.random.Generator | None = None) -> QueueResult:
+    """Run the fluid queue (see the module docstring). The fluid policies are deterministic: ``rng`` is
+    accepted for a uniform synthesis interface and not drawn from.
+
+    ``queue_ms`` on a zero-capacity step with a backlog is the buffer's worth at the mean capacity
+    (``MAX_QUEUE_MS`` if the mean capacity is 0 too).
+    """
+    return _queue(capacity_bps, offered_bps, step_s, bn)
+
+
+def _queue(capacity_bps: np.ndarray, offered_bps: np.ndarray, step_s: float, bn: Bottleneck,
+           force_loop: bool = False) -> QueueResult:
+    if not isinstance(bn, Bottleneck):
+        raise TracegenError(f"must be a Bottleneck, got {type(bn).__name__}", field=_SECTION)
+    c, o = _check_inputs(capacity_bps, offered_bps, step_s)
+    top = bn.buffer_bytes_for(c)
+    in_b = o * (step_s / 8.0)
+    cap_b = c * (step_s / 8.0)
+    avg = None
+    if bn.policy == "drop-tail":
+        b_end = _reflect(in_b - cap_b, 0.0, top)
+        aqm = np.zeros(c.size)
+    else:
+        engine = _Aqm(bn, c, in_b, cap_b, top, step_s)
+        engine.run(force_loop)
+        b_end, aqm, avg = engine.b_end, engine.aqm, engine.avg_out
+    # rounding residue (e.g. offered == capacity up to 1 ulp) is not a queue: snap it to empty
+    b_end = np.where(b_end < _SNAP_REL * max(1.0, float(in_b.max()), float(cap_b.max())), 0.0, b_end)
+    b_start = np.concatenate([[0.0], b_end[:-1]])
+    overflow = np.maximum(b_start + in_b - aqm - cap_b - top, 0.0)
+    dropped = aqm + overflow
+    delivered = np.clip((b_start + in_b - dropped - b_end) * (8.0 / step_s), 0.0, c)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        share = np.where(in_b > 0, dropped / in_b, 0.0)
+        delay = np.where(c > 0, b_end * 8000.0 / c, 0.0)
+    mean_c = float(np.mean(c))
+    stalled = (c <= 0) & (b_end > 0)
+    if stalled.any():
+        delay[stalled] = top * 8000.0 / mean_c if mean_c > 0 else MAX_QUEUE_MS
+    return QueueResult(queue_ms=delay, drop_share=np.clip(share, 0.0, 1.0), delivered_bps=delivered,
+                       backlog_bytes=b_end, dropped_bytes=dropped, buffer_bytes=top, avg_queue_bytes=avg)
+
+
+__all__ = ["Bottleneck", "QueueResult", "POLICIES", "MAX_QUEUE_MS", "lindley_waits", "queue"]

@@ -1,0 +1,415 @@
+"""Cross traffic on a shared bottleneck: Poisson flow arrivals with Pareto sizes, and Pareto on/off sources.
+
+Fluid model on the trace's time grid. Unresponsive load (constant-rate flows and on/off sources) takes
+its rate off the top of the capacity; what is left is shared equally by the active responsive flows and
+the foreground (the trace's own flow): each gets ``left / (n_responsive + 1)`` (max-min fairness without
+demand limits, i.e. processor sharing). Responsive flows are tracked exactly: all of them get the same
+rate, so one "attained service" clock serves every flow, and a flow leaves when that clock has advanced
+by its size. Who is active decides the share and the share decides who leaves, so this is an event
+loop over flows (two events a flow, ~0.25 M flows/s); flows are few relative to steps. Everything per
+step is vectorised. The system starts empty at t = 0 (no flows in progress); on/off sources start in
+their stationary state.
+"""
+
+from __future__ import annotations
+
+import heapq
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import TracegenError
+
+_SECTION = "cross_traffic"
+
+
+def _fail(name: str, message: str) -> TracegenError:
+    return TracegenError(message, field=f"{_SECTION}.{name}")
+
+
+def _positive(name: str, value: float) -> None:
+    if not (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value) and value > 0):
+        raise _fail(name, f"must be > 0, got {value!r}")
+
+
+@dataclass(frozen=True)
+class CrossTraffic:
+    """Competing traffic: Poisson flows (``flow_rate_per_s`` > 0) and/or on/off sources (``onoff_sources`` > 0).
+
+    Flow sizes are Pareto with mean ``size_bytes_mean`` and tail index ``pareto_alpha``; a share
+    ``responsive_share`` of flows is responsive (fair share of what is left), the rest send at
+    ``unresponsive_rate_bps`` until their bytes are sent. On/off sources send ``onoff_rate_bps`` while on;
+    on and off periods are Pareto with means ``on_mean_s``, ``off_mean_s`` and tail index ``onoff_alpha``.
+    """
+
+    flow_rate_per_s: float = 0.0
+    size_bytes_mean: float = 1_000_000.0
+    pareto_alpha: float = 1.5
+    responsive_share: float = 1.0
+    unresponsive_rate_bps: float = 1_000_000.0
+    onoff_sources: int = 0
+    on_mean_s: float = 1.0
+    off_mean_s: float = 2.0
+    onoff_rate_bps: float = 500_000.0
+    onoff_alpha: float = 1.4
+
+    def __post_init__(self) -> None:
+        self.validate()
+
+    def validate(self) -> None:
+        """Raise TracegenError naming the first field that is out of range."""
+        r = self.flow_rate_per_s
+        if not (isinstance(r, (int, float)) and not isinstance(r, bool) and math.isfinite(r) and r >= 0):
+            raise _fail("flow_rate_per_s", f"must be >= 0 (0: no flows), got {r!r}")
+        n = self.onoff_sources
+        if not (isinstance(n, (int, np.integer)) and not isinstance(n, bool) and n >= 0):
+            raise _fail("onoff_sources", f"must be a whole number >= 0, got {n!r}")
+        for name in ("size_bytes_mean", "unresponsive_rate_bps", "on_mean_s", "off_mean_s", "onoff_rate_bps"):
+            _positive(name, getattr(self, name))
+        for name in ("pareto_alpha", "onoff_alpha"):
+            a = getattr(self, name)
+            if not (isinstance(a, (int, float)) and not isinstance(a, bool) and math.isfinite(a) and a > 1):
+                raise _fail(name, f"must be > 1 (the mean is infinite otherwise), got {a!r}")
+        s = self.responsive_share
+        if not (isinstance(s, (int, float)) and not isinstance(s, bool) and 0.0 <= s <= 1.0):
+            raise _fail("responsive_share", f"must be in [0, 1], got {s!r}")
+        if r == 0 and n == 0:
+            raise TracegenError("has no source: flow_rate_per_s is 0 and onoff_sources is 0", field=_SECTION,
+                                hint="set flow_rate_per_s > 0 or onoff_sources > 0")
+
+
+@dataclass(frozen=True)
+class CrossResult:
+    """Per-step cross traffic (arrays of the capacity's length)."""
+
+    cross_bps: np.ndarray       # cross traffic carried (responsive + unresponsive, at most the capacity)
+    available_bps: np.ndarray   # the foreground's share
+    offered_bps: np.ndarray     # cross load offered: responsive carried + all unresponsive demand
+    n_active: np.ndarray        # time-averaged number of active cross flows (responsive + unresponsive)
+    n_responsive: np.ndarray    # time-averaged number of active responsive flows
+    unresponsive_bps: np.ndarray  # unresponsive demand (flows + on/off sources), may exceed the capacity
+
+
+# --- random building blocks -------------------------------------------------------------------------------
+
+def pareto_samples(mean: float, alpha: float, size: int, rng: np.random.Generator) -> np.ndarray:
+    """Pareto (type I) draws with the given mean: scale x_m = mean·(alpha − 1)/alpha."""
+    x_m = mean * (alpha - 1.0) / alpha
+    return x_m * (1.0 + rng.pareto(alpha, size))
+
+
+def _pareto_residual(mean: float, alpha: float, size: int, rng: np.random.Generator) -> np.ndarray:
+    """Draws from the equilibrium residual-life law of a Pareto period (stationary start of a renewal process).
+
+    F_e(x) = x/mean for x < x_m, else 1 − (x_m/x)^(alpha−1)/alpha; inverted in closed form.
+    """
+    x_m = mean * (alpha - 1.0) / alpha
+    u = rng.random(size)
+    knee = (alpha - 1.0) / alpha
+    with np.errstate(divide="ignore"):
+        tail = x_m * (alpha * (1.0 - u)) ** (-1.0 / (alpha - 1.0))
+    return np.where(u < knee, u * mean, tail)
+
+
+def poisson_arrivals_s(rate_per_s: float, duration_s: float, rng: np.random.Generator) -> np.ndarray:
+    """Sorted arrival times of a Poisson process of ``rate_per_s`` on [0, duration_s)."""
+    n = rng.poisson(rate_per_s * duration_s)
+    return np.sort(rng.uniform(0.0, duration_s, n))
+
+
+# --- binning ----------------------------------------------------------------------------------------------
+
+def _bin_jumps(at_s: np.ndarray, jump: np.ndarray, n_steps: int, step_s: float) -> np.ndarray:
+    """Per-step time average of sum_i jump_i·1[t >= at_i] (exact, via two bincounts)."""
+    keep = at_s < n_steps * step_s
+    e, d = at_s[keep], jump[keep]
+    j = np.minimum(np.floor(e / step_s).astype(np.int64), n_steps - 1)
+    full = np.cumsum(np.bincount(j + 1, weights=d, minlength=n_steps + 1)[:n_steps])
+    part = np.bincount(j, weights=d * ((j + 1) * step_s - e), minlength=n_steps)
+    return full + part / step_s
+
+
+def _bin_intervals(start_s: np.ndarray, end_s: np.ndarray, weight: float, n_steps: int,
+                   step_s: float) -> np.ndarray:
+    """Per-step time average of weight·sum_i 1[start_i <= t < end_i] (exact)."""
+    start = np.maximum(np.asarray(start_s, dtype=float), 0.0)
+    e = np.concatenate([start, np.asarray(end_s, dtype=float)])
+    d = np.concatenate([np.ones(start.size), -np.ones(start.size)])
+    if e.size < n_steps // 4:  # few edges: as a step function (sort + one pass over the steps)
+        order = np.argsort(e, kind="stable")
+        times = np.concatenate([[0.0], e[order]])
+        values = np.concatenate([[0.0], np.cumsum(d[order])])
+        return weight * _bin_step_function(times, values, n_steps, step_s)
+    return weight * _bin_jumps(e, d, n_steps, step_s)
+
+
+def _bin_step_function(times_s: np.ndarray, values: np.ndarray, n_steps: int, step_s: float) -> np.ndarray:
+    """Per-step time average of the function equal to values[i] on [times[i], times[i+1]) (times[0] = 0).
+
+    Steps without a jump take their segment's value (one np.repeat); steps holding a jump are integrated.
+    """
+    times = np.asarray(times_s, dtype=float)
+    values = np.asarray(values, dtype=float)
+    if times.size == 1:
+        return np.full(n_steps, values[0])
+    first = np.minimum(np.ceil(times / step_s).astype(np.int64), n_steps)
+    first[0] = 0
+    first = np.maximum.accumulate(first)
+    out = np.repeat(values, np.diff(np.append(first, n_steps)))
+    hold = np.unique(np.minimum(np.floor(times[1:] / step_s).astype(np.int64), n_steps))
+    hold = hold[hold < n_steps]
+    cum = np.concatenate([[0.0], np.cumsum(values[:-1] * np.diff(times))])
+    edges = np.concatenate([hold * step_s, (hold + 1) * step_s])
+    j = np.searchsorted(times, edges, side="right") - 1
+    f = cum[j] + values[j] * (edges - times[j])
+    out[hold] = (f[hold.size:] - f[:hold.size]) / step_s
+    return out
+
+
+# --- on/off sources ---------------------------------------------------------------------------------------
+
+_ONOFF_CHUNK_PERIODS = 1 << 20  # periods drawn at a time (bounds memory; sources are processed in row blocks)
+
+
+def _onoff_rate(n_sources: int, on_mean_s: float, off_mean_s: float, alpha: float, rate_bps: float,
+                n_steps: int, step_s: float, rng: np.random.Generator) -> np.ndarray:
+    total = n_steps * step_s
+    rate = np.zeros(n_steps)
+    if n_sources == 0:
+        return rate
+    p_on = on_mean_s / (on_mean_s + off_mean_s)
+    start_on = rng.random(n_sources) < p_on
+    first = np.where(start_on, _pareto_residual(on_mean_s, alpha, n_sources, rng),
+                     _pareto_residual(off_mean_s, alpha, n_sources, rng))
+    pairs0 = int(math.ceil(1.2 * total / (on_mean_s + off_mean_s))) + 4
+    rows = max(1, _ONOFF_CHUNK_PERIODS // (2 * pairs0))
+    for r0 in range(0, n_sources, rows):  # blocks of sources, each block vectorised
+        s_on = start_on[r0:r0 + rows, None]
+        # periods[:, 0]: residual of the starting state; then the other state and the start state in turn
+        chunks = [first[r0:r0 + rows, None]]
+        covered = chunks[0][:, 0].copy()
+        pairs = pairs0
+        while covered.min() < total:
+            on = pareto_samples(on_mean_s, alpha, (s_on.shape[0], pairs), rng)
+            off = pareto_samples(off_mean_s, alpha, (s_on.shape[0], pairs), rng)
+            block = np.empty((s_on.shape[0], 2 * pairs))
+            block[:, 0::2] = np.where(s_on, off, on)
+            block[:, 1::2] = np.where(s_on, on, off)
+            chunks.append(block)
+            covered += block.sum(axis=1)
+            pairs = max(4, pairs // 4)
+        periods = np.concatenate(chunks, axis=1)
+        ends = np.cumsum(periods, axis=1)
+        begins = ends - periods
+        is_on = np.empty(periods.shape, dtype=bool)
+        is_on[:, 0::2] = s_on
+        is_on[:, 1::2] = ~s_on
+        sel = is_on & (begins < total)
+        rate += _bin_intervals(begins[sel], ends[sel], rate_bps, n_steps, step_s)
+    return rate
+
+
+def _n_steps(duration_s: float, step_s: float) -> int:
+    for name, v in (("duration_s", duration_s), ("step_s", step_s)):
+        if not (math.isfinite(v) and v > 0):
+            raise TracegenError(f"must be > 0, got {v}", field=name)
+    n = int(round(duration_s / step_s))
+    if n < 1:
+        raise TracegenError(f"step {step_s} s is longer than the duration {duration_s} s", field="step_s")
+    return n
+
+
+def superposed_onoff(n_sources: int, on_mean_s: float, off_mean_s: float, alpha: float, rate_bps: float,
+                     duration_s: float, step_s: float, rng: np.random.Generator) -> np.ndarray:
+    """Aggregate rate (bit/s, per step of ``step_s``, round(duration/step) steps) of Pareto on/off sources.
+
+    Each source alternates on (``rate_bps``) and off periods, Pareto with the given means and tail index
+    ``alpha``, and starts in its stationary state (state on with probability on/(on+off), first period from
+    the residual-life law), so the series has no warm-up transient.
+    """
+    if not (isinstance(n_sources, (int, np.integer)) and not isinstance(n_sources, bool) and n_sources >= 0):
+        raise TracegenError(f"must be a whole number >= 0, got {n_sources!r}", field="n_sources")
+    for name, v in (("on_mean_s", on_mean_s), ("off_mean_s", off_mean_s), ("rate_bps", rate_bps)):
+        if not (math.isfinite(v) and v > 0):
+            raise TracegenError(f"must be > 0, got {v}", field=name)
+    if not (math.isfinite(alpha) and alpha > 1):
+        raise TracegenError(f"must be > 1 (the mean is infinite otherwise), got {alpha}", field="alpha")
+    return _onoff_rate(int(n_sources), on_mean_s, off_mean_s, alpha, rate_bps, _n_steps(duration_s, step_s),
+                       step_s, rng)
+
+
+# --- responsive flows: processor sharing ------------------------------------------------------------------
+
+def _processor_sharing(arrive_s: np.ndarray, size_bits: np.ndarray, left_bps: np.ndarray,
+                       step_s: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Exact processor sharing of ``left_bps`` (piecewise constant per step) among the active flows and
+    the foreground. Returns (departure times, inf if still active at the end; event times; flow counts).
+
+    Loop over events (one arrival and one departure a flow): each flow's departure depends on how many
+    others are active meanwhile, which depends on their departures, so it is sequential.
+    """
+    n_steps = len(left_bps)
+    total = n_steps * step_s
+    cum = np.concatenate([[0.0], np.cumsum(left_bps * step_s)])
+    rate = left_bps
+    end_cum = float(cum[-1])
+
+    def served_at(t: float) -> float:
+        k = int(t // step_s)
+        if k >= n_steps:
+            return end_cum
+        return float(cum[k] + rate[k] * (t - k * step_s))
+
+    def time_of(a: float) -> float:
+        if a > end_cum:
+            return math.inf
+        idx = int(np.searchsorted(cum, a, side="left"))
+        if idx == 0:
+            return 0.0
+        k = idx - 1
+        return k * step_s + float((a - cum[k]) / rate[k])
+
+    arrive, size = arrive_s.tolist(), size_bits.tolist()
+    depart = [math.inf] * len(arrive)
+    heap: list[tuple[float, int]] = []
+    clock = 0.0      # attained service of every active flow since t = 0 (bits)
+    served = 0.0     # cumulative left-over capacity at time t (bits)
+    t, n, i = 0.0, 0, 0
+    times, counts = [0.0], [0]
+    n_flows = len(arrive)
+    while True:
+        t_arr = arrive[i] if i < n_flows else math.inf
+        if heap:
+            target = served + (heap[0][0] - clock) * (n + 1)
+            t_dep = max(time_of(target), t)
+        else:
+            t_dep = math.inf
+        if t_arr == math.inf and t_dep == math.inf:
+            break
+        if t_arr <= t_dep:
+            s_new = served_at(t_arr)
+            clock += (s_new - served) / (n + 1)
+            served, t = s_new, t_arr
+            heapq.heappush(heap, (clock + size[i], i))
+            n += 1
+            i += 1
+        else:
+            if t_dep >= total:
+                break
+            finish, k = heapq.heappop(heap)
+            clock, served, t = finish, target, t_dep
+            depart[k] = t
+            n -= 1
+        times.append(t)
+        counts.append(n)
+    return np.asarray(depart), np.asarray(times), np.asarray(counts, dtype=float)
+
+
+def _check_capacity(capacity_bps: np.ndarray, step_s: float) -> np.ndarray:
+    capacity = np.asarray(capacity_bps, dtype=float)
+    if capacity.ndim != 1 or capacity.size == 0:
+        raise TracegenError(f"must be a non-empty 1-D array, got shape {capacity.shape}", field="capacity_bps")
+    bad = ~(np.isfinite(capacity) & (capacity >= 0))
+    if bad.any():
+        raise TracegenError(f"must be finite and >= 0, got {capacity[bad][0]} at step {int(np.argmax(bad))}",
+                            field="capacity_bps")
+    if not (isinstance(step_s, (int, float)) and math.isfinite(step_s) and step_s > 0):
+        raise TracegenError(f"must be > 0, got {step_s}", field="step_s")
+    return capacity
+
+
+def fair_share(capacity_bps: np.ndarray, step_s: float, arrive_s: np.ndarray, size_bytes: np.ndarray,
+               unresponsive_bps: np.ndarray | float = 0.0, n_unresponsive: np.ndarray | float = 0.0) -> CrossResult:
+    """Share the capacity among given responsive flows and the foreground, after the unresponsive load.
+
+    Unresponsive demand ``unresponsive_bps`` (per step) is carried first, up to the capacity; the
+    responsive flows (arrival times ``arrive_s``, sorted, and sizes ``size_bytes``) and the foreground
+    split the rest equally, exactly (processor sharing on the piecewise-constant left-over rate).
+    ``n_unresponsive`` only feeds the ``n_active`` count.
+    """
+    capacity = _check_capacity(capacity_bps, step_s)
+    n_steps = capacity.size
+    arrive = np.asarray(arrive_s, dtype=float)
+    size_bits = 8.0 * np.asarray(size_bytes, dtype=float)
+    if arrive.shape != size_bits.shape or arrive.ndim != 1:
+        raise TracegenError(f"arrive_s and size_bytes must be 1-D of one length, got {arrive.shape} and "
+                            f"{size_bits.shape}", field="size_bytes")
+    if arrive.size and (np.any(np.diff(arrive) < 0) or arrive[0] < 0):
+        raise TracegenError("must be sorted and >= 0", field="arrive_s")
+    if arrive.size and not np.all(size_bits > 0):
+        raise TracegenError(f"must be > 0, got {size_bits[size_bits <= 0][0] / 8}", field="size_bytes")
+    unresp = np.asarray(unresponsive_bps, dtype=float)
+    if unresp.ndim == 0 and unresp == 0:
+        unresp, carried_unresp, left = np.zeros(n_steps), np.zeros(n_steps), capacity
+    else:
+        unresp = np.array(np.broadcast_to(unresp, capacity.shape))
+        carried_unresp = np.minimum(unresp, capacity)
+        left = capacity - carried_unresp
+    _, times, counts = _processor_sharing(arrive, size_bits, left, step_s)
+    n_resp = _bin_step_function(times, counts, n_steps, step_s)
+    available = left * _bin_step_function(times, 1.0 / (counts + 1.0), n_steps, step_s)
+    responsive_bps = left - available
+    return CrossResult(cross_bps=carried_unresp + responsive_bps, available_bps=available,
+                       offered_bps=responsive_bps + unresp, n_active=n_resp + n_unresponsive, n_responsive=n_resp,
+                       unresponsive_bps=unresp)
+
+
+def generate(ct: CrossTraffic, capacity_bps: np.ndarray, step_s: float, rng: np.random.Generator) -> CrossResult:
+    """Cross traffic on the grid of ``capacity_bps`` (one value per step of ``step_s``); see the module docstring.
+
+    Draws, in this order: flow arrivals (Poisson), sizes (Pareto), which flows are responsive, on/off
+    periods.
+    """
+    if not isinstance(ct, CrossTraffic):
+        raise TracegenError(f"must be a CrossTraffic, got {type(ct).__name__}", field=_SECTION)
+    capacity = _check_capacity(capacity_bps, step_s)
+    n_steps = capacity.size
+    total = n_steps * step_s
+    arrive = poisson_arrivals_s(ct.flow_rate_per_s, total, rng) if ct.flow_rate_per_s > 0 else np.empty(0)
+    sizes = pareto_samples(ct.size_bytes_mean, ct.pareto_alpha, arrive.size, rng)
+    responsive = rng.random(arrive.size) < ct.responsive_share
+    onoff = _onoff_rate(int(ct.onoff_sources), ct.on_mean_s, ct.off_mean_s, ct.onoff_alpha, ct.onoff_rate_bps,
+                        n_steps, step_s, rng)
+    u_start = arrive[~responsive]
+    if u_start.size == 0 and ct.onoff_sources == 0:
+        return fair_share(capacity, step_s, arrive, sizes)
+    u_end = u_start + 8.0 * sizes[~responsive] / ct.unresponsive_rate_bps
+    n_unresp = _bin_intervals(u_start, u_end, 1.0, n_steps, step_s)
+    return fair_share(capacity, step_s, arrive[responsive], sizes[responsive],
+                      unresponsive_bps=ct.unresponsive_rate_bps * n_unresp + onoff, n_unresponsive=n_unresp)
+
+
+def hurst_aggregated_variance(x: np.ndarray, block_sizes: np.ndarray | None = None) -> float:
+    """Hurst exponent by the aggregated-variance method: H = 1 + β/2, β the least-squares slope of
+    log Var(X^(m)) against log m, X^(m) the means of non-overlapping blocks of m samples.
+
+    Default block sizes: 20 log-spaced values from 10 to len(x)/50 (at least 50 blocks each: fewer blocks
+    make the variance at large m, and so the slope, noisy).
+    """
+    x = np.asarray(x, dtype=float)
+    if x.ndim != 1 or not np.all(np.isfinite(x)):
+        raise TracegenError("must be a finite 1-D series", field="x")
+    n = x.size
+    if block_sizes is None:
+        if n < 1000:
+            raise TracegenError(f"needs at least 1000 samples for the default block sizes, got {n}", field="x")
+        m = np.unique(np.round(np.logspace(1.0, np.log10(n / 50.0), 20)).astype(np.int64))
+    else:
+        m = np.unique(np.asarray(block_sizes, dtype=np.int64))
+        if m.size < 2 or m[0] < 1 or m[-1] > n // 2:
+            raise TracegenError(f"needs two or more distinct sizes in [1, {n // 2}], got {list(m)}",
+                                field="block_sizes")
+    var = np.empty(m.size)
+    for i, size in enumerate(m.tolist()):  # one pass per block size (~20), each vectorised
+        k = n // size
+        var[i] = x[: k * size].reshape(k, size).mean(axis=1).var(ddof=1)
+    if np.any(var <= 0):
+        raise TracegenError("has zero variance at some block size (a constant series has no Hurst exponent)",
+                            field="x")
+    beta = np.polyfit(np.log(m), np.log(var), 1)[0]
+    return float(1.0 + beta / 2.0)
+
+
+__all__ = ["CrossTraffic", "CrossResult", "generate", "fair_share", "superposed_onoff", "hurst_aggregated_variance",
+           "pareto_samples", "poisson_arrivals_s"]
