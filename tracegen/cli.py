@@ -367,6 +367,94 @@ def model_show(path: Path, as_json: bool) -> None:
     click.echo(m.to_json().rstrip() if as_json else m.summary_text())
 
 
+# --- synth and scenarios ---------------------------------------------------------------------------
+_set_option = click.option("--set", "assignments", multiple=True, metavar="SECTION.KEY=VALUE",
+                           help="Set any scenario key, e.g. bottleneck.buffer_ms=50 or tilt.handover_rate_factor=3 "
+                                "(repeatable; the value is read as TOML).")
+
+
+@cli.command("synth")
+@click.argument("model_file", required=False, type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--scenario", "scenario", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="A scenario file (TOML) with the run's settings; options given here win.")
+@click.option("--count", type=int, default=None, help="How many traces [scenario key: count].")
+@click.option("--duration", type=str, default=None, help="Length of each trace, e.g. 600 or 10min [duration_s].")
+@click.option("--step", type=str, default=None, help="Sample step, at least 10 ms, e.g. 0.1 or 100ms [step_s].")
+@click.option("--seed", type=int, default=None, help="Seed of the run [seed].")
+@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Write one file per trace into this folder [output.dir].")
+@click.option("--format", "fmt", type=click.Choice(["parquet", "csv"]), default=None,
+              help="File format with --out [output.format].")
+@click.option("--catalog", "to_catalog", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Add the traces to this catalog instead [output.catalog].")
+@click.option("--force", is_flag=True, help="Replace files that exist in --out.")
+@_set_option
+@click.pass_context
+def synth_cmd(ctx: click.Context, model_file: Path | None, scenario: Path | None, count: int | None,
+              duration: str | None, step: str | None, seed: int | None, out_dir: Path | None, fmt: str | None,
+              to_catalog: Path | None, force: bool, assignments: tuple[str, ...]) -> None:
+    """Sample synthetic traces from MODEL_FILE (or the scenario's model)."""
+    from .model import load
+    from .progress import bar
+    from .synth import iter_synth, write_traces
+    from .synth.scenario import load_scenario
+    from .units import parse_duration_s
+
+    overrides: dict[str, Any] = {"model": None if model_file is None else str(model_file.resolve()),
+                                 "count": count, "seed": seed,
+                                 "duration_s": None if duration is None else parse_duration_s(duration, "--duration"),
+                                 "step_s": None if step is None else parse_duration_s(step, "--step")}
+    sets = list(assignments)
+    for key, value in (("dir", out_dir), ("format", fmt), ("catalog", to_catalog)):
+        if value is not None:
+            sets.append(f"output.{key}={json.dumps(str(Path(value).resolve()) if key != 'format' else value)}")
+    plan = load_scenario(scenario, overrides, tuple(sets))
+    if plan.output_dir is None and plan.output_catalog is None:
+        raise click.UsageError("say where the traces go: --out DIR or --catalog DIR (or output.dir in the scenario)")
+    model = load(plan.model_path)
+    options = dict(cross_traffic=plan.cross_traffic, bottleneck=plan.bottleneck, handover=plan.handover,
+                   tilt=plan.tilt, scenario=plan.to_dict(), name=plan.model_path.stem)
+    stream = iter_synth(model, plan.count, plan.duration_s, plan.step_s, plan.seed, **options)
+    with bar(stream, label=f"synthesising {plan.count} traces", length=plan.count) as items:
+        if plan.output_dir is not None:
+            written = write_traces(items, plan.output_dir, plan.output_format, force=force)
+            click.echo(f"wrote {len(written)} traces to {plan.output_dir}")
+        else:
+            from .catalog import Catalog
+
+            cat = Catalog.open(plan.output_catalog, create=True)
+            added = present = 0
+            batch: list = []
+            for tr in items:  # committed in batches, so memory stays flat for large counts
+                batch.append(tr)
+                if len(batch) == 64:
+                    rep = cat.add(batch, progress=False)
+                    added, present, batch = added + len(rep.added), present + len(rep.present), []
+            if batch:
+                rep = cat.add(batch, progress=False)
+                added, present = added + len(rep.added), present + len(rep.present)
+            click.echo(f"added {added} synthetic traces ({present} already there) to {cat.root}")
+
+
+@cli.group(cls=_Group)
+def scenario() -> None:
+    """Check scenario files."""
+
+
+@scenario.command("check")
+@click.argument("path", type=click.Path(dir_okay=False, path_type=Path))
+@_set_option
+def scenario_check(path: Path, assignments: tuple[str, ...]) -> None:
+    """Validate a scenario file and print the resolved plan."""
+    from .model import load
+    from .synth.scenario import load_scenario
+
+    plan = load_scenario(path, None, assignments)
+    load(plan.model_path)  # the model must exist and validate too
+    click.echo(plan.describe())
+    click.echo("ok")
+
+
 # --- demo ------------------------------------------------------------------------------------------
 @cli.command()
 @click.option("--seed", default=7, show_default=True, help="Seed of the invented world.")
