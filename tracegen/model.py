@@ -191,6 +191,9 @@ class PathModel:
             raise ModelError(f"state shares sum to {shares.sum():.6f}, not 1", field="states")
         loss = None if d.get("loss") is None else GilbertElliott.from_dict(d["loss"])
         events = None if d.get("events") is None else EventModel.from_dict(d["events"])
+        if events is not None and events.post_state_probs is not None and len(events.post_state_probs) != n:
+            raise ModelError(f"has {len(events.post_state_probs)} probabilities for a model of {n} states",
+                             field="events.post_state_probs", hint="refit the model with this tracegen version")
         report = d.get("report") or {}
         if not isinstance(report, Mapping):
             raise ModelError("must be an object", field="report")

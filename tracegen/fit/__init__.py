@@ -217,7 +217,7 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
                                     cand.ar[s], rtt_log, lm))
     loss = fit_gilbert_elliott([np.asarray(t["loss"]) for t in prep.traces])
     events = fit_events([_columns(t, p) for t, p in zip(prep.traces, cand.paths)],
-                        outage_state=0 if with_outage else None)
+                        outage_state=0 if with_outage else None, n_states=chosen + shift)
     report: dict[str, Any] = {
         "selection": list(selection), "trace_ids": [t.id for t in traces], "traces": len(traces),
         "samples": prep.n_samples, "known_samples": prep.n_known, "level_samples": int(len(prep.features)),
