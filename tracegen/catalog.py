@@ -26,7 +26,7 @@ import os
 import shutil
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterable, Iterator, Sequence
+from typing import Any, Iterable, Iterator, Sequence, Sized
 
 import numpy as np
 import pandas as pd
@@ -284,13 +284,18 @@ class Catalog:
         digest = _write_atomic(trace.to_arrow(), staging / f"{trace.id}.parquet")
         return index_row(trace, digest)
 
-    def add(self, traces: Iterable[Trace], *, progress: bool | None = None) -> IngestReport:
-        """Store traces; ones whose id is already in the catalog are left as they are."""
+    def add(self, traces: Iterable[Trace], *, progress: bool | None = None, length: int | None = None) -> IngestReport:
+        """Store traces, all in one commit; ones whose id is already in the catalog are left as they are.
+
+        ``traces`` may be a generator: each trace is staged as it arrives and then dropped, so memory
+        stays flat however many there are (``length`` sizes the progress bar then)."""
         report = IngestReport()
         with self._locked():
             known = set(self.index()["id"])
             rows = []
-            with bar(list(traces), label="storing traces", enabled=progress) as items:
+            if length is None and isinstance(traces, Sized):
+                length = len(traces)
+            with bar(traces, label="storing traces", length=length, enabled=progress) as items:
                 for tr in items:
                     if tr.id in known:
                         report.present.append(tr.id)

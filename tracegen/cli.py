@@ -368,91 +368,170 @@ def model_show(path: Path, as_json: bool) -> None:
 
 
 # --- synth and scenarios ---------------------------------------------------------------------------
-_set_option = click.option("--set", "assignments", multiple=True, metavar="SECTION.KEY=VALUE",
-                           help="Set any scenario key, e.g. bottleneck.buffer_ms=50 or tilt.handover_rate_factor=3 "
-                                "(repeatable; the value is read as TOML).")
+def _synth_options(f):
+    """The options of ``synth``: each sets one scenario key (scenario.OPTION_KEYS), named in its help."""
+    opts = [
+        click.option("--scenario", "scenario_file", type=click.Path(dir_okay=False, path_type=Path), default=None,
+                     help="A scenario file (TOML) with the run's settings; options given here win."),
+        click.option("--count", type=int, default=None, help="How many traces [count]."),
+        click.option("--duration", type=str, default=None, help="Length of each trace, e.g. 600 or 10min [duration_s]."),
+        click.option("--step", type=str, default=None, help="Sample step, at least 10 ms, e.g. 0.1 or 100ms [step_s]."),
+        click.option("--seed", type=int, default=None, help="Seed of the run [seed]."),
+        click.option("--name", type=str, default=None, help="Label of the run in sources, tags and file names [name]."),
+        click.option("--out", type=click.Path(file_okay=False, path_type=Path), default=None,
+                     help="Write one file per trace into this folder [output.dir]."),
+        click.option("--format", "format", type=click.Choice(["parquet", "csv"]), default=None,
+                     help="File format with --out [output.format]."),
+        click.option("--catalog", type=click.Path(file_okay=False, path_type=Path), default=None,
+                     help="Add the traces to this catalog instead [output.catalog]."),
+        click.option("--force", is_flag=True, default=None, help="Replace files that exist in --out [output.force]."),
+        click.option("--manifest", type=click.Path(dir_okay=False, path_type=Path), default=None,
+                     help="Where the per-trace weight table goes [output.manifest]."),
+        click.option("--cross-flows-per-s", type=float, default=None,
+                     help="Competing flows arriving per second [cross_traffic.flow_rate_per_s]."),
+        click.option("--buffer-ms", type=float, default=None, help="Bottleneck buffer in ms [bottleneck.buffer_ms]."),
+        click.option("--policy", type=str, default=None,
+                     help="Bottleneck drop policy: drop-tail, red or codel [bottleneck.policy]."),
+        click.option("--handovers-per-min", type=float, default=None, help="Handover rate [handover.rate_per_min]."),
+        click.option("--handover-at", type=str, multiple=True,
+                     help="A handover at this time, e.g. 90 or 2min (repeatable) [handover.times_s]."),
+        click.option("--tilt-states", type=str, default=None,
+                     help="Weights raising the chance of states, lowest first, e.g. 4,2,1,1,1 [tilt.state_weights]."),
+        click.option("--tilt-handovers", type=float, default=None,
+                     help="Multiply the handover rate, weighting traces back [tilt.handover_rate_factor]."),
+        click.option("--tag", "tag", type=str, multiple=True, help="KEY=VALUE label on every trace (repeatable) [tags]."),
+        click.option("--set", "assignments", multiple=True, metavar="SECTION.KEY=VALUE",
+                     help="Set any scenario key, e.g. bottleneck.buffer_bytes=50000 or tilt.failure_factor=3 "
+                          "(repeatable; the value is read as TOML)."),
+    ]
+    for opt in reversed(opts):
+        f = opt(f)
+    return f
+
+
+def _plan_from_cli(model_file: Path | None, values: dict[str, Any]):
+    from .synth.scenario import OPTION_KEYS, load_scenario
+    from .units import parse_duration_s
+
+    settings: dict[str, Any] = {"model": None if model_file is None else str(model_file)}
+    for option, key in OPTION_KEYS.items():
+        value = values.get(option.replace("-", "_"))
+        if value is None or value == ():
+            continue
+        if option in ("duration", "step"):
+            value = parse_duration_s(value, f"--{option}")
+        elif option in ("out", "catalog", "manifest"):
+            value = str(value)
+        elif option == "handover-at":
+            value = [0.0 if _is_zero(v) else parse_duration_s(v, "--handover-at") for v in value]
+        elif option == "tilt-states":
+            try:
+                value = [float(v) for v in value.split(",")]
+            except ValueError:
+                raise click.BadParameter(f"'{value}' is not a comma-separated list of numbers",
+                                         param_hint="--tilt-states") from None
+        elif option == "tag":
+            tags = {}
+            for item in value:
+                k, sep, v = item.partition("=")
+                if not sep or not k.strip():
+                    raise click.BadParameter(f"'{item}' is not KEY=VALUE", param_hint="--tag")
+                tags[k.strip()] = v.strip()
+            value = tags
+        settings[key] = value
+    for k, v in (settings.pop("tags", None) or {}).items():
+        settings[f"tags.{k}"] = v
+    return load_scenario(values.get("scenario_file"), settings, tuple(values.get("assignments") or ()))
+
+
+def _is_zero(text: str) -> bool:
+    try:
+        return float(text) == 0.0
+    except ValueError:
+        return False
 
 
 @cli.command("synth")
 @click.argument("model_file", required=False, type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--scenario", "scenario", type=click.Path(dir_okay=False, path_type=Path), default=None,
-              help="A scenario file (TOML) with the run's settings; options given here win.")
-@click.option("--count", type=int, default=None, help="How many traces [scenario key: count].")
-@click.option("--duration", type=str, default=None, help="Length of each trace, e.g. 600 or 10min [duration_s].")
-@click.option("--step", type=str, default=None, help="Sample step, at least 10 ms, e.g. 0.1 or 100ms [step_s].")
-@click.option("--seed", type=int, default=None, help="Seed of the run [seed].")
-@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
-              help="Write one file per trace into this folder [output.dir].")
-@click.option("--format", "fmt", type=click.Choice(["parquet", "csv"]), default=None,
-              help="File format with --out [output.format].")
-@click.option("--catalog", "to_catalog", type=click.Path(file_okay=False, path_type=Path), default=None,
-              help="Add the traces to this catalog instead [output.catalog].")
-@click.option("--force", is_flag=True, help="Replace files that exist in --out.")
-@_set_option
+@_synth_options
 @click.pass_context
-def synth_cmd(ctx: click.Context, model_file: Path | None, scenario: Path | None, count: int | None,
-              duration: str | None, step: str | None, seed: int | None, out_dir: Path | None, fmt: str | None,
-              to_catalog: Path | None, force: bool, assignments: tuple[str, ...]) -> None:
-    """Sample synthetic traces from MODEL_FILE (or the scenario's model)."""
+def synth_cmd(ctx: click.Context, model_file: Path | None, **values: Any) -> None:
+    """Sample synthetic traces from MODEL_FILE (or the scenario's model) into files or a catalog.
+
+    Same model, settings and seed give the same bytes. Each trace records its importance weight when a
+    tilt is set; the manifest lists them with the self-normalised weights.
+    """
     from .model import load
     from .progress import bar
-    from .synth import iter_synth, write_traces
-    from .synth.scenario import load_scenario
-    from .units import parse_duration_s
+    from .synth import iter_synth, model_digest
+    from .synth.output import add_to_catalog, check_targets, write_files
 
-    overrides: dict[str, Any] = {"model": None if model_file is None else str(model_file.resolve()),
-                                 "count": count, "seed": seed,
-                                 "duration_s": None if duration is None else parse_duration_s(duration, "--duration"),
-                                 "step_s": None if step is None else parse_duration_s(step, "--step")}
-    sets = list(assignments)
-    for key, value in (("dir", out_dir), ("format", fmt), ("catalog", to_catalog)):
-        if value is not None:
-            sets.append(f"output.{key}={json.dumps(str(Path(value).resolve()) if key != 'format' else value)}")
-    plan = load_scenario(scenario, overrides, tuple(sets))
+    if values.get("catalog") is None and values.get("out") is None and ctx.obj.get("catalog") is not None:
+        values["catalog"] = ctx.obj["catalog"]
+    plan = _plan_from_cli(model_file, values)
     if plan.output_dir is None and plan.output_catalog is None:
         raise click.UsageError("say where the traces go: --out DIR or --catalog DIR (or output.dir in the scenario)")
     model = load(plan.model_path)
-    options = dict(cross_traffic=plan.cross_traffic, bottleneck=plan.bottleneck, handover=plan.handover,
-                   tilt=plan.tilt, scenario=plan.to_dict(), name=plan.model_path.stem)
-    stream = iter_synth(model, plan.count, plan.duration_s, plan.step_s, plan.seed, **options)
-    with bar(stream, label=f"synthesising {plan.count} traces", length=plan.count) as items:
-        if plan.output_dir is not None:
-            written = write_traces(items, plan.output_dir, plan.output_format, force=force)
-            click.echo(f"wrote {len(written)} traces to {plan.output_dir}")
-        else:
-            from .catalog import Catalog
+    stream = iter_synth(model, plan.count, plan.duration_s, plan.step_s, plan.seed, **plan.options())
+    run = {"plan": {**plan.to_dict(), "count": plan.count}, "model_sha256": model_digest(model)}
+    if plan.output_dir is not None:
+        check_targets(plan.output_dir, plan.name, range(plan.count), plan.output_format, force=plan.force,
+                      manifest=plan.manifest)
+        with bar(stream, label=f"synthesising {plan.count} traces", length=plan.count) as items:
+            report = write_files(items, plan.output_dir, fmt=plan.output_format, name=plan.name, run=run,
+                                 manifest=plan.manifest)
+        click.echo(f"wrote {len(report.files)} traces to {plan.output_dir} (manifest {report.manifest})")
+    else:
+        from .catalog import Catalog
 
-            cat = Catalog.open(plan.output_catalog, create=True)
-            added = present = 0
-            batch: list = []
-            for tr in items:  # committed in batches, so memory stays flat for large counts
-                batch.append(tr)
-                if len(batch) == 64:
-                    rep = cat.add(batch, progress=False)
-                    added, present, batch = added + len(rep.added), present + len(rep.present), []
-            if batch:
-                rep = cat.add(batch, progress=False)
-                added, present = added + len(rep.added), present + len(rep.present)
-            click.echo(f"added {added} synthetic traces ({present} already there) to {cat.root}")
+        if plan.manifest is not None and plan.manifest.exists() and not plan.force:
+            raise TracegenError("exists already", path=plan.manifest, hint="pass --force to replace it")
+        cat = Catalog.open(plan.output_catalog, create=True)
+        report = add_to_catalog(stream, cat, count=plan.count, manifest=plan.manifest)
+        click.echo(f"added {len(report.rows) - len(report.present)} synthetic traces "
+                   f"({len(report.present)} already there) to {cat.root}")
+    if plan.tilt is not None:
+        click.echo(f"tilted: effective sample size {report.effective_sample_size:.1f} of {len(report.rows)}")
 
 
 @cli.group(cls=_Group)
 def scenario() -> None:
-    """Check scenario files."""
+    """Check scenario files and list their keys."""
 
 
 @scenario.command("check")
 @click.argument("path", type=click.Path(dir_okay=False, path_type=Path))
-@_set_option
+@click.option("--set", "assignments", multiple=True, metavar="SECTION.KEY=VALUE",
+              help="Set any scenario key before checking (repeatable).")
 def scenario_check(path: Path, assignments: tuple[str, ...]) -> None:
-    """Validate a scenario file and print the resolved plan."""
+    """Validate a scenario file against its model and print the resolved plan."""
     from .model import load
+    from .synth import check_run
     from .synth.scenario import load_scenario
 
     plan = load_scenario(path, None, assignments)
-    load(plan.model_path)  # the model must exist and validate too
+    model = load(plan.model_path)
+    try:
+        check_run(model, plan.count, plan.duration_s, plan.step_s, plan.seed, cross_traffic=plan.cross_traffic,
+                  bottleneck=plan.bottleneck, handover=plan.handover, tilt=plan.tilt)
+    except TracegenError as exc:
+        raise TracegenError(exc.message, path=path, field=exc.field, hint=exc.hint) from None
     click.echo(plan.describe())
+    click.echo(f"model: {model.n_states} states at {model.step_s:g} s; "
+               f"{plan.count * math.ceil(plan.duration_s / plan.step_s - 1e-9):,} samples in all")
     click.echo("ok")
+
+
+@scenario.command("keys")
+def scenario_keys() -> None:
+    """List every scenario key with its default and the option that sets it."""
+    from .synth.scenario import OPTION_KEYS, all_keys
+
+    by_key = {v: k for k, v in OPTION_KEYS.items()}
+    for key, default in all_keys().items():
+        option = by_key.get(key) or by_key.get(key.split(".")[0])
+        how = f"--{option}" if option else f"--set {key}=..."
+        click.echo(f"{key:36} {'' if default is None else default!s:14} {how}")
 
 
 # --- demo ------------------------------------------------------------------------------------------

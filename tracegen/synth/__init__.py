@@ -1,26 +1,38 @@
 """Synthesis: ``tracegen.synth(model, n, duration_s, step_s, seed, ...)`` samples new traces from a path model.
 
 Per trace ``i``: the sampler (sampler.py) draws the state path, levels with AR residuals, RTT, loss and
-events, optionally tilted toward rare conditions (tilt.py); cross traffic (crosstraffic.py) shares the
-sampled capacity with the trace's own flow; a bottleneck queue (bottleneck.py) turns the load into
-queueing delay (added to RTT) and overflow loss. Every random stream of trace ``i`` comes from
+events (events.py), optionally tilted toward rare conditions (tilt.py); the shared link (link.py) puts
+cross traffic on the sampled capacity and runs the bottleneck queue, whose delay is added to the RTT and
+whose drops to the loss. Every random stream of trace ``i`` comes from
 ``SeedSequence(seed, spawn_key=(i, part))``, so trace ``i`` is the same bytes whatever the count, the
 order or the number of workers.
+
+Each trace records ``cross_bps`` and ``queue_ms`` when those parts are on, the hidden ``state``, the
+``event`` marks, and in its metadata: origin ``synthetic``, the model's sha256, seed, index, scenario
+and tracegen version (provenance), and the importance weight p/q of a tilted draw (``weight``, 1
+without a tilt; its log is ``provenance["log_likelihood_ratio"]``).
 """
 
 from __future__ import annotations
 
 import hashlib
+import math
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any, Iterator, Mapping
 
 import numpy as np
 
 from .. import __version__
 from ..errors import TracegenError
 from ..trace import Trace
+from .bottleneck import Bottleneck
+from .crosstraffic import CrossTraffic
+from .events import HandoverPlan, check_events
+from .sampler import MIN_STEP_S, sample_trace
+from .tilt import Tilt, TiltPlan
 
 STREAM_SAMPLER, STREAM_CROSS, STREAM_QUEUE = 0, 1, 2
+MAX_LOG_WEIGHT = 700.0  # exp(700) is near the largest double; a weight is clipped there rather than overflow
 
 
 def trace_rng(seed: int, index: int, part: int) -> np.random.Generator:
@@ -33,92 +45,114 @@ def model_digest(model: Any) -> str:
     return hashlib.sha256(model.to_json().encode()).hexdigest()
 
 
-def synth_one(model: Any, index: int, duration_s: float, step_s: float, seed: int, *, cross_traffic: Any = None,
-              bottleneck: Any = None, handover: Any = None, tilt: Any = None, scenario: Any = None,
-              name: str = "model", digest: str | None = None) -> Trace:
-    """Trace ``index`` of a run (see the module docstring)."""
-    from .sampler import sample_trace
+def _load(model: Any) -> tuple[Any, str | None]:
+    from ..model import PathModel, load
 
+    if isinstance(model, (str, Path)):
+        return load(model), Path(model).stem
+    if not isinstance(model, PathModel):
+        raise TracegenError(f"must be a PathModel or a model file path, got {type(model).__name__}", field="model")
+    return model, None
+
+
+def _check_number(name: str, value: Any, *, integer: bool = False, low: float = 0.0, low_open: bool = True) -> None:
+    types = (int, np.integer) if integer else (int, float, np.integer, np.floating)
+    ok = isinstance(value, types) and not isinstance(value, bool) and math.isfinite(value) \
+        and (value > low if low_open else value >= low)
+    if not ok:
+        raise TracegenError(f"must be {'an integer' if integer else 'a number'} {'>' if low_open else '>='} {low:g}, "
+                            f"got {value!r}", field=name)
+
+
+def check_run(model: Any, count: int, duration_s: float, step_s: float, seed: int, *,
+              cross_traffic: CrossTraffic | None = None, bottleneck: Bottleneck | None = None,
+              handover: HandoverPlan | None = None, tilt: Tilt | None = None) -> TiltPlan:
+    """Validate a whole run before anything is drawn or written; returns the resolved tilt."""
+    _check_number("count", count, integer=True, low=1, low_open=False)
+    _check_number("seed", seed, integer=True, low_open=False)
+    _check_number("duration_s", duration_s)
+    _check_number("step_s", step_s)
+    if step_s < MIN_STEP_S - 1e-12:
+        raise TracegenError(f"must be at least {MIN_STEP_S} s (10 ms), got {step_s:g}", field="step_s",
+                            hint="dwell times are in seconds, so any step from 10 ms up works")
+    if step_s > duration_s:
+        raise TracegenError(f"step {step_s:g} s is longer than the duration {duration_s:g} s", field="step_s")
+    for name, value, cls in (("cross_traffic", cross_traffic, CrossTraffic), ("bottleneck", bottleneck, Bottleneck),
+                             ("handover", handover, HandoverPlan), ("tilt", tilt, Tilt)):
+        if value is not None and not isinstance(value, cls):
+            raise TracegenError(f"must be a {cls.__name__}, got {type(value).__name__}", field=name)
+    plan = TiltPlan.build(model, tilt)
+    check_events(model, handover, plan)
+    return plan
+
+
+def synth_one(model: Any, index: int, duration_s: float, step_s: float, seed: int, *,
+              cross_traffic: CrossTraffic | None = None, bottleneck: Bottleneck | None = None,
+              handover: HandoverPlan | None = None, tilt: Tilt | None = None, scenario: Mapping[str, Any] | None = None,
+              name: str = "model", tags: Mapping[str, str] | None = None, digest: str | None = None) -> Trace:
+    """Trace ``index`` of a run (module docstring). Arguments are assumed checked by :func:`check_run`."""
     s = sample_trace(model, duration_s, step_s, trace_rng(seed, index, STREAM_SAMPLER), tilt=tilt, handover=handover)
-    capacity = np.asarray(s.bandwidth_bps, dtype=float)
-    bandwidth, rtt, loss = capacity, np.asarray(s.rtt_ms, dtype=float), np.asarray(s.loss, dtype=float)
+    bandwidth, rtt, loss = s.bandwidth_bps, s.rtt_ms, s.loss
     extra: dict[str, Any] = {}
-    if cross_traffic is not None:
-        from .crosstraffic import generate
+    if cross_traffic is not None or bottleneck is not None:
+        from .link import share_link
 
-        cr = generate(cross_traffic, capacity, step_s, trace_rng(seed, index, STREAM_CROSS))
-        bandwidth = np.asarray(cr.available_bps, dtype=float)
-        extra["cross_bps"] = np.asarray(cr.cross_bps, dtype=float)
-        offered = np.asarray(cr.offered_bps, dtype=float) + bandwidth
-    else:
-        offered = capacity
-    if bottleneck is not None:
-        from .bottleneck import queue
-
-        q = queue(capacity, offered, step_s, bottleneck, trace_rng(seed, index, STREAM_QUEUE))
-        queue_ms = np.asarray(q.queue_ms, dtype=float)
-        extra["queue_ms"] = queue_ms
-        rtt = rtt + queue_ms
-        drop = np.clip(np.asarray(q.drop_share, dtype=float), 0.0, 1.0)
-        loss = np.where(np.isnan(loss), drop, 1.0 - (1.0 - np.nan_to_num(loss)) * (1.0 - drop))
+        link = share_link(np.asarray(bandwidth, dtype=np.float64), float(step_s), cross_traffic, bottleneck,
+                          trace_rng(seed, index, STREAM_CROSS), trace_rng(seed, index, STREAM_QUEUE))
+        bandwidth = link.available_bps
+        if cross_traffic is not None:
+            extra["cross_bps"] = link.cross_bps
+        if bottleneck is not None:
+            extra["queue_ms"] = link.queue_ms
+            rtt = rtt + link.queue_ms
+            drop = link.drop_share
+            # the path's loss and the queue's drops are independent; unknown path loss counts as none
+            loss = 1.0 - (1.0 - np.nan_to_num(loss)) * (1.0 - drop)
     llr = float(s.log_likelihood_ratio)
     prov = {"model": name, "model_sha256": digest or model_digest(model), "seed": int(seed), "index": int(index),
             "duration_s": float(duration_s), "step_s": float(step_s), "tracegen_version": __version__,
-            "log_likelihood_ratio": llr, "scenario": scenario}
+            "log_likelihood_ratio": llr}
+    if scenario is not None:
+        prov["scenario"] = dict(scenario)
     return Trace.from_columns(
         s.t_s, bandwidth_bps=bandwidth, rtt_ms=rtt, loss=np.clip(loss, 0.0, 1.0), jitter_ms=s.jitter_ms,
-        state=np.asarray(s.state, dtype=np.int64), event=list(s.event), origin="synthetic",
-        source=f"{name}#{index}", tags={"model": name}, group=f"{name}-seed{seed}-{index}", provenance=prov,
-        weight=float(np.exp(np.clip(llr, -700.0, 700.0))), **extra)
+        state=s.state, event=s.event, origin="synthetic", source=f"{name}#{index}",
+        tags={"model": name, **dict(tags or {})}, group=f"{name}-seed{seed}-{index}", provenance=prov,
+        weight=float(np.exp(np.clip(llr, -MAX_LOG_WEIGHT, MAX_LOG_WEIGHT))), **extra)
 
 
 def iter_synth(model: Any, count: int, duration_s: float, step_s: float, seed: int = 0, *, start: int = 0,
                **options: Any) -> Iterator[Trace]:
-    """Traces ``start .. start+count-1`` one at a time (flat memory for any count)."""
-    if count < 1:
-        raise TracegenError(f"count must be at least 1, got {count}", field="count")
+    """Traces ``start .. start+count-1`` one at a time (flat memory for any count); checked up front."""
+    model, stem = _load(model)
+    if stem is not None:
+        options.setdefault("name", stem)
+    _check_number("start", start, integer=True, low_open=False)
+    check_run(model, count, duration_s, step_s, seed, **{k: options.get(k) for k in
+                                                        ("cross_traffic", "bottleneck", "handover", "tilt")})
     digest = model_digest(model)
-    for i in range(start, start + count):
-        yield synth_one(model, i, duration_s, step_s, seed, digest=digest, **options)
+
+    def generate() -> Iterator[Trace]:
+        for i in range(start, start + count):
+            yield synth_one(model, i, duration_s, step_s, seed, digest=digest, **options)
+
+    return generate()
 
 
-def synth(model: Any, n: int, duration_s: float, step_s: float, seed: int = 0, **options: Any) -> list[Trace]:
-    """``n`` synthetic traces from ``model`` (a PathModel or a model file path).
+def synth(model: Any, n: int, duration_s: float, step_s: float, seed: int = 0, *, stream: bool = False,
+          **options: Any) -> list[Trace] | Iterator[Trace]:
+    """``n`` synthetic traces from ``model`` (a PathModel or a model file path): a list, or with
+    ``stream=True`` an iterator that makes one trace at a time.
 
     Options: ``cross_traffic`` (CrossTraffic), ``bottleneck`` (Bottleneck), ``handover`` (HandoverPlan),
-    ``tilt`` (Tilt), ``name`` (the model's name in sources and tags), ``scenario`` (recorded in provenance).
-    Each trace's ``weight`` is its importance weight p/q (1 without a tilt) and its provenance holds the
-    log likelihood ratio; ``tracegen.synth.tilt.normalised_weights`` normalises a set of them.
+    ``tilt`` (Tilt), ``name`` (the run's label in sources and tags), ``tags`` (extra labels),
+    ``scenario`` (recorded in provenance), ``start`` (index of the first trace). Everything is checked
+    before the first draw. Each trace's ``weight`` is its importance weight p/q (1 without a tilt);
+    ``tracegen.synth.tilt.normalised_weights`` normalises a set of them.
     """
-    if isinstance(model, (str, Path)):
-        from ..model import load
-
-        options.setdefault("name", Path(model).stem)
-        model = load(model)
-    return list(iter_synth(model, n, duration_s, step_s, seed, **options))
+    traces = iter_synth(model, n, duration_s, step_s, seed, **options)
+    return traces if stream else list(traces)
 
 
-def write_traces(traces: Iterator[Trace], out_dir: Path, fmt: str = "parquet", *, force: bool = False) -> list[Path]:
-    """Write each trace as ``synthetic-INDEX.parquet`` (or .csv) under ``out_dir``; refuse to overwrite."""
-    import pyarrow.csv as pacsv
-    import pyarrow.parquet as pq
-
-    out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
-    written = []
-    for tr in traces:
-        path = out_dir / f"synthetic-{tr.provenance['index']:06d}.{fmt}"
-        if path.exists() and not force:
-            raise TracegenError("exists already", path=path, hint="pass --force to replace, or another --out")
-        tmp = path.with_name(f".{path.name}.tmp")
-        table = tr.to_arrow()
-        if fmt == "parquet":
-            pq.write_table(table, tmp, compression="zstd")
-        else:
-            pacsv.write_csv(table, tmp)
-        tmp.replace(path)
-        written.append(path)
-    return written
-
-
-__all__ = ["synth", "iter_synth", "synth_one", "trace_rng", "write_traces", "model_digest"]
+__all__ = ["synth", "iter_synth", "synth_one", "check_run", "trace_rng", "model_digest", "CrossTraffic", "Bottleneck",
+           "HandoverPlan", "Tilt"]

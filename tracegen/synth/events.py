@@ -188,6 +188,19 @@ def _law(model: Any, plan: HandoverPlan | None) -> _HandoverLaw:
     return _HandoverLaw(rate, p_fail, max(p_break, 0.0), interrupt, failure, threshold)
 
 
+def check_events(model: Any, plan: HandoverPlan | None, tilt: TiltPlan) -> None:
+    """Refuse, before anything is drawn, a tilt that would push the failure probability above 1 or
+    stretch a log-normal length that has no spread."""
+    law = _law(model, plan)
+    q = law.p_fail * tilt.failure_factor
+    if q > 1.0 + 1e-12:
+        raise TracegenError(f"failure probability {law.p_fail:.4g} x {tilt.failure_factor:g} = {q:.4g} is above 1",
+                            field="tilt.failure_factor", hint=f"use a factor <= {1.0 / law.p_fail:.4g}")
+    if tilt.outage_length_factor != 1.0 and law.failure[1] <= 0 and law.p_fail > 0:
+        raise TracegenError("the failure lengths have no spread, so their length cannot be tilted",
+                            field="tilt.outage_length_factor")
+
+
 def draw_events(model: Any, plan: HandoverPlan | None, tilt: TiltPlan, rng: np.random.Generator,
                 duration_s: float) -> EventDraw:
     """Draw the handovers and standalone outages of one trace of ``duration_s`` (module docstring).
@@ -271,4 +284,4 @@ def draw_events(model: Any, plan: HandoverPlan | None, tilt: TiltPlan, rng: np.r
                      bursts=bursts, switches=switches, llr=llr)
 
 
-__all__ = ["HandoverPlan", "EventDraw", "draw_events", "HANDOVER", "FAILURE", "OUTAGE", "NEW_LEVEL"]
+__all__ = ["HandoverPlan", "EventDraw", "draw_events", "check_events", "HANDOVER", "FAILURE", "OUTAGE", "NEW_LEVEL"]

@@ -8,6 +8,8 @@ trace's importance weight. Only choices whose probability under both laws is kno
   the jump out of state i picks j with q_ij = p_ij w_j / sum_k p_ik w_k, and the same weights tilt the
   first state (drawn from the state shares) and the state after a handover (``post_state_probs``).
   Each choice adds log(p / q) = log(sum_k p_k w_k) - log(w_chosen).
+* ``low_state_weight`` is a shortcut for state weights that favour the worst conditions: it multiplies
+  the weight of the outage state (if the model has one) and of the ``low_states`` lowest level states.
 * ``dwell_scale[k]`` multiplies the time scale of state k's dwell family (a single number applies to
   the outage state): lognormal mu + log c, gamma scale_s * c, geometric p / c, so the mean dwell is c
   times as long. Draws are clipped below at the fit's step as in ``DwellFit.sample_s``; the ratio is of
@@ -57,6 +59,8 @@ class Tilt:
     """
 
     state_weights: tuple[float, ...] | None = None
+    low_state_weight: float = 1.0
+    low_states: int = 1
     dwell_scale: float | tuple[float, ...] = 1.0
     handover_rate_factor: float = 1.0
     outage_rate_factor: float = 1.0
@@ -70,7 +74,11 @@ class Tilt:
             object.__setattr__(self, "dwell_scale", _positive_tuple(self.dwell_scale, "tilt.dwell_scale"))
         else:
             object.__setattr__(self, "dwell_scale", _positive(self.dwell_scale, "tilt.dwell_scale"))
-        for name in ("handover_rate_factor", "outage_rate_factor", "failure_factor", "outage_length_factor"):
+        if isinstance(self.low_states, bool) or not isinstance(self.low_states, (int, np.integer)) \
+                or self.low_states < 1:
+            raise TracegenError(f"must be a whole number >= 1, got {self.low_states!r}", field="tilt.low_states")
+        for name in ("low_state_weight", "handover_rate_factor", "outage_rate_factor", "failure_factor",
+                     "outage_length_factor"):
             object.__setattr__(self, name, _positive(getattr(self, name), f"tilt.{name}"))
 
     def resolve(self, model: Any) -> "TiltPlan":
@@ -203,6 +211,14 @@ class TiltPlan:
         w = np.ones(n) if tilt.state_weights is None else np.asarray(tilt.state_weights, dtype=np.float64)
         if w.shape != (n,):
             raise TracegenError(f"needs {n} weights (one per model state), got {w.size}", field="tilt.state_weights")
+        if tilt.low_state_weight != 1.0:
+            levels = [i for i, s in enumerate(model.states) if s.kind == "level"]
+            if tilt.low_states > len(levels):
+                raise TracegenError(f"the model has {len(levels)} level states, not {tilt.low_states}",
+                                    field="tilt.low_states")
+            low = [i for i, s in enumerate(model.states) if s.kind == "outage"] + levels[: tilt.low_states]
+            w = w.copy()
+            w[low] *= tilt.low_state_weight
         if isinstance(tilt.dwell_scale, tuple):
             scale = np.asarray(tilt.dwell_scale, dtype=np.float64)
             if scale.shape != (n,):
