@@ -40,6 +40,8 @@ class DemoReport:
     duration_s: float
     model_path: Path | None = None
     model_summary: str = ""
+    synthetic_dir: Path | None = None
+    synthetic_count: int = 0
 
     @property
     def trace_ids(self) -> tuple[str, ...]:
@@ -59,18 +61,24 @@ class DemoReport:
             out.append(f"  {tag}: " + ", ".join(f"{v} {c}" for v, c in values.items()))
         if self.model_path is not None:
             out += [f"Fitted a path model to the LTE traces: {self.model_path}", self.model_summary]
+        if self.synthetic_dir is not None:
+            out.append(f"Synthesised {self.synthetic_count} traces from it into {self.synthetic_dir} "
+                       "(with a manifest of weights)")
         example = self.trace_ids[0] if self.trace_ids else "ID"
         out += ["What to try next:", f"  tracegen catalog list{flag}", f"  tracegen catalog stats --by access{flag}",
                 f"  tracegen catalog show {example}{flag}", f"  tracegen catalog verify{flag}"]
         if self.model_path is not None:
             out += [f"  tracegen model show {self.model_path}",
-                    f"  tracegen fit{flag} --where access=wifi --out wifi-model.json"]
+                    f"  tracegen fit{flag} --where access=wifi --out wifi-model.json",
+                    f"  tracegen synth {self.model_path} --count 5 --duration 10min --step 100ms "
+                    "--cross-flows-per-s 0.5 --buffer-ms 150 --handovers-per-min 2 --out synthetic/"]
         return "\n".join(out)
 
 
 def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: float = 300,
-               progress: bool | None = None, fit_model: bool = True) -> DemoReport:
-    """Simulate the fleet, write its files under ``root/demo-sources`` and ingest them into the catalog at ``root``."""
+               progress: bool | None = None, fit_model: bool = True, synthesise: bool = True) -> DemoReport:
+    """Simulate the fleet, write its files under ``root/demo-sources`` and ingest them into the catalog at ``root``;
+    fit a model to the LTE traces (``root/demo-model.json``) and synthesise as many into ``root/demo-synthetic``."""
     from ..catalog import Catalog
     from ..ingest import Labels
     from ..progress import bar
@@ -106,5 +114,24 @@ def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: flo
                     progress=progress)
         model_path = model.save(root / "demo-model.json")
         summary = model.summary_text()
+    synthetic_dir, n_synth = None, 0
+    if model_path is not None and synthesise:
+        synthetic_dir, n_synth = _synthesise(model_path, root / "demo-synthetic", len(cat.ids(["access=lte"])),
+                                             duration_s, seed, progress)
     return DemoReport(root, sources, {k: tuple(p.name for p in v) for k, v in sorted(written.items())},
-                      tuple(added), tuple(present), counts, seed, float(duration_s), model_path, summary)
+                      tuple(added), tuple(present), counts, seed, float(duration_s), model_path, summary,
+                      synthetic_dir, n_synth)
+
+
+def _synthesise(model_path: Path, out: Path, count: int, duration_s: float, seed: int,
+                progress: bool | None) -> tuple[Path, int]:
+    """As many synthetic traces as measured LTE ones, as long, at the model's step, into ``out`` (replaced)."""
+    from ..progress import bar
+    from ..synth import iter_synth
+    from ..synth.output import write_files
+
+    stream = iter_synth(model_path, count, float(duration_s), 1.0, seed, name="demo")
+    with bar(stream, label=f"synthesising {count} traces", length=count, enabled=progress) as items:
+        report = write_files(items, out, name="demo", run={"plan": {"model": model_path.name, "count": count,
+                                                                    "duration_s": float(duration_s), "seed": seed}})
+    return out, len(report.files)
