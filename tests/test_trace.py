@@ -157,3 +157,97 @@ def test_resample_agrees_with_brute_force_integration(gaps, values, step):
         if counts[k] >= 0.5 * step / 1e-3 + 2 and np.isfinite(value):
             # the fine grid misplaces each sample boundary by up to 1 ms: allow that share of the bin
             assert value == pytest.approx(sums[k] / counts[k], rel=1e-6, abs=(v.max() + 1e-9) * 2.5e-3 / step)
+
+
+# --------------------------------------------------------------------------------------------------
+# The fast content id and string columns against their original, per-sample definitions
+
+
+def _old_as_str(values):
+    """The original definition of a string column (tracegen/trace.py before the fast path)."""
+    out = np.empty(len(values), dtype=object)
+    for i, v in enumerate(values):
+        out[i] = None if v is None or (isinstance(v, float) and np.isnan(v)) else str(v)
+    return out
+
+
+def _old_id(tr) -> str:
+    """The original definition of Trace.id: sha256 over each column's canonical bytes, a string column as
+    the JSON text of its values."""
+    import hashlib
+    import json
+
+    from tracegen.trace import COLUMNS, SCHEMA_VERSION
+
+    h = hashlib.sha256(f"tracegen-trace-v{SCHEMA_VERSION}\0{tr.origin}\0".encode())
+    for name in sorted(tr.data):
+        arr = tr.data[name]
+        kind = COLUMNS[name][0]
+        h.update(name.encode() + b"\0")
+        if kind == "float":
+            h.update(np.where(np.isnan(arr), np.nan, arr + 0.0).astype("<f8").tobytes())
+        elif kind == "int":
+            h.update(np.asarray(arr, dtype="<i8").tobytes())
+        else:
+            h.update(json.dumps([None if v is None else str(v) for v in arr]).encode())
+    return h.hexdigest()[:16]
+
+
+def _labelled(cell, event=None, n=None):
+    n = len(cell) if n is None else n
+    t = np.arange(n) * 0.1
+    bw = np.where(np.arange(n) % 7 == 0, np.nan, 1e6 + np.arange(n))
+    bw[1::11] = -0.0
+    return Trace.from_columns(t, bandwidth_bps=bw, rtt_ms=np.full(n, 20.0), cell=cell, event=event,
+                              state=np.arange(n) % 3, origin="synthetic")
+
+
+LABELS = ["A", None, "B", 'qu"ote', "back\\slash", "é-ünïcødé", "emoji \U0001f4e1", "", "tab\there", "\u2028"]
+
+
+@pytest.mark.parametrize("cell, event", [
+    (["A", None, "B"], None),
+    ([None, None, None, None], [None, None, "handover", None]),
+    (LABELS, LABELS[::-1]),
+    # long runs (joined by repetition) and short runs over several 65536-sample chunks (gathered)
+    ([f"cell-{i // 5000}" if i % 9000 else None for i in range(150_000)],
+     [None if i % 4000 else "handover" for i in range(150_000)]),
+    ([LABELS[i % len(LABELS)] for i in range(140_000)], [LABELS[(i * 7) % len(LABELS)] for i in range(140_000)]),
+    # not str or None: NaN becomes None, numbers and bytes their str() (the per-sample definition)
+    ([1, float("nan"), b"xy", np.str_("s"), None, 2.5], [float("nan")] * 6),
+    (["lone \ud800 surrogate", None], None),
+])
+def test_fast_id_and_labels_match_the_original_definition(cell, event):
+    tr = _labelled(cell, event)
+    assert tr.id == _old_id(tr)
+    assert list(tr["cell"]) == list(_old_as_str(cell))
+    if event is not None:
+        assert list(tr["event"]) == list(_old_as_str(event))
+    # the same values given as an object array, and read back through Arrow, give the same id
+    again = _labelled(np.array(cell, dtype=object), None if event is None else np.array(event, dtype=object))
+    assert again.id == tr.id
+    if all(c is None or "\ud800" not in str(c) for c in cell):
+        assert Trace.from_arrow(tr.to_arrow()).id == tr.id
+
+
+@settings(max_examples=80, deadline=None)
+@given(st.lists(st.one_of(st.none(), st.text(max_size=6), st.sampled_from(["x", "y"])), min_size=1, max_size=120))
+def test_fast_id_matches_the_original_on_any_labels(labels):
+    tr = _labelled(labels, labels[::-1])
+    assert tr.id == _old_id(tr)
+    assert list(tr["cell"]) == list(_old_as_str(labels))
+
+
+def test_string_columns_do_not_alias_the_callers_array():
+    cells = np.array(["a", None, "b"], dtype=object)
+    tr = _labelled(cells)
+    cells[0] = "changed"
+    assert tr["cell"][0] == "a" and cells.flags.writeable
+
+
+def test_cell_changes_and_event_resampling_use_the_labels():
+    tr = _labelled(["a", "a", None, "b", "b", None, "a", "c"],
+                   [None, "handover", None, None, "outage", None, None, None])
+    assert tr.summary()["cell_changes"] == 3.0          # a -> b -> a -> c, unknown labels skipped
+    r = tr.resample(0.4)
+    assert list(r["event"]) == ["handover", "outage"]

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import platform
 from dataclasses import dataclass, field, replace
 from typing import Any, Mapping
 
@@ -57,11 +58,61 @@ def _as_float(values: Any, n: int) -> np.ndarray:
     return arr
 
 
-def _as_str(values: Any) -> np.ndarray:
+def _as_str_slow(values: Any) -> np.ndarray:
     out = np.empty(len(values), dtype=object)
-    for i, v in enumerate(values):
+    for i, v in enumerate(values):  # the general definition; _as_str takes it only for unusual input
         out[i] = None if v is None or (isinstance(v, float) and np.isnan(v)) else str(v)
     return out
+
+
+_NONE_ADDRESS = id(None)
+_CPYTHON = platform.python_implementation() == "CPython"
+
+
+def _none_mask(arr: np.ndarray) -> np.ndarray:
+    """True where a 1-D object array holds None.
+
+    On CPython an object's id is its address and an object array stores addresses, so the array's raw
+    bytes compared with id(None) answer at memory speed (no object is touched); elsewhere, or if numpy
+    ever refuses the raw bytes of an object array, an elementwise comparison."""
+    if _CPYTHON:
+        try:
+            raw = memoryview(arr).cast("B") if arr.flags.c_contiguous else arr.tobytes()
+            return np.frombuffer(raw, dtype=np.uintp) == _NONE_ADDRESS
+        except (TypeError, ValueError, BufferError):  # pragma: no cover - no such numpy yet
+            pass
+    return np.array([v is None for v in arr], dtype=bool)  # pragma: no cover - other interpreters
+
+
+def _str_values(vals: np.ndarray) -> bool:
+    """True when every element of a 1-D object array (no None) is a str: pyarrow infers ``string`` only
+    then (bytes, numbers and NaN give another type or an error)."""
+    if vals.size <= 32:
+        return all(isinstance(v, str) for v in vals.tolist())
+    try:
+        return pa.array(vals).type == pa.string()
+    except (pa.ArrowException, TypeError, ValueError, OverflowError):
+        return False
+
+
+def _as_str(values: Any) -> np.ndarray:
+    """An object array of str and None: None or a float NaN give None, anything else ``str(v)``.
+
+    Fast path (no Python per sample): when every value is None or a str, the values are kept as they
+    are (a str subclass stays itself; it compares and hashes as its text)."""
+    if isinstance(values, np.ndarray) and values.ndim != 1:
+        return _as_str_slow(values)
+    try:
+        if isinstance(values, np.ndarray):
+            arr = values.astype(object)  # a copy: the Trace must not share (and freeze) the caller's array
+        else:
+            arr = np.fromiter(values, dtype=object, count=len(values))
+    except (TypeError, ValueError):
+        return _as_str_slow(values)
+    null = _none_mask(arr)
+    if null.all() or _str_values(arr[~null]):
+        return arr
+    return _as_str_slow(arr)
 
 
 def _locate(index: int, path: str | None, lines: np.ndarray | None) -> dict[str, Any]:
@@ -132,13 +183,90 @@ def validate_columns(data: Mapping[str, np.ndarray], *, path: str | None = None,
 
 
 def _canonical_bytes(name: str, arr: np.ndarray) -> bytes:
+    """The bytes a column contributes to the content id (definition; ``_canonical_chunks`` gives the
+    same bytes faster)."""
+    return b"".join(_canonical_chunks(name, arr))
+
+
+def _canonical_chunks(name: str, arr: np.ndarray) -> list[Any]:
+    """Buffers whose concatenation is the column's canonical bytes:
+
+    * float: little-endian float64 with one NaN pattern and no -0.0;
+    * int: little-endian int64;
+    * str: ``json.dumps([None if v is None else str(v) for v in arr]).encode()``, built from the JSON of
+      each distinct value (pyarrow's dictionary encoding) and repeated runs, never per sample in Python.
+    """
     kind = COLUMNS[name][0]
     if kind == "float":
-        a = np.where(np.isnan(arr), np.nan, arr + 0.0).astype("<f8")  # one NaN pattern, no -0.0
-        return a.tobytes()
+        if isinstance(arr, np.ndarray) and arr.dtype == np.float64:
+            a = arr + 0.0                                     # no -0.0
+            nan = np.isnan(a)
+            if nan.any():
+                a[nan] = np.nan                               # one NaN pattern
+            return [a if a.dtype.str == "<f8" else a.astype("<f8")]
+        a = np.where(np.isnan(arr), np.nan, arr + 0.0).astype("<f8")
+        return [a]
     if kind == "int":
-        return np.asarray(arr, dtype="<i8").tobytes()
-    return json.dumps([None if v is None else str(v) for v in arr]).encode()
+        return [np.ascontiguousarray(arr, dtype="<i8")]
+    return _json_str_chunks(arr)
+
+
+_CHUNK = 1 << 16
+
+
+def _json_str_slow(values: Any) -> list[bytes]:
+    return [json.dumps([None if v is None else str(v) for v in values]).encode()]
+
+
+def _json_str_chunks(values: Any) -> list[bytes]:
+    if not (isinstance(values, np.ndarray) and values.dtype == object and values.ndim == 1):
+        return _json_str_slow(values)
+    arr = values
+    n = arr.size
+    if n == 0:
+        return [b"[]"]
+    null = _none_mask(arr)
+    where = np.flatnonzero(~null)
+    vals = arr[where]
+    try:
+        if vals.size and not _str_values(vals):
+            return _json_str_slow(arr)
+        enc = pa.array(vals, type=pa.string()).dictionary_encode()
+        words = enc.dictionary.to_pylist()
+    except (pa.ArrowException, TypeError, ValueError, UnicodeEncodeError):  # e.g. a lone surrogate
+        return _json_str_slow(arr)
+    # token k is the JSON of distinct value k followed by the separator; the last token is null
+    tokens = [json.dumps(w).encode() + b", " for w in words] + [b"null, "]
+    null_code = len(words)
+    index = enc.indices.to_numpy(zero_copy_only=False).astype(np.int64)
+    if where.size * 32 < n:  # few labels among unknowns (event marks): runs between the labelled samples
+        gaps = np.diff(np.concatenate(([-1], where, [n]))) - 1
+        body = [tokens[null_code] * int(gaps[0])]
+        for code, gap in zip(index.tolist(), gaps[1:].tolist()):  # a loop over labelled samples
+            body += [tokens[code], tokens[null_code] * gap]
+    else:
+        codes = np.full(n, null_code, dtype=np.int64)
+        codes[where] = index
+        cut = np.flatnonzero(codes[1:] != codes[:-1]) + 1
+        if cut.size * 32 < n:  # long runs (cell labels): each run's bytes by repetition
+            start = np.concatenate(([0], cut))
+            length = np.diff(np.append(start, n))
+            body = [tokens[c] * k for c, k in zip(codes[start].tolist(), length.tolist())]  # a loop over runs
+        else:  # short runs: gather the token bytes of each sample with numpy, a chunk at a time
+            pool = np.frombuffer(b"".join(tokens), dtype=np.uint8)
+            size = np.array([len(t) for t in tokens], dtype=np.int64)
+            first = np.cumsum(size) - size
+            body = []
+            for lo in range(0, n, _CHUNK):  # a loop over chunks of 65536 samples
+                c = codes[lo:lo + _CHUNK]
+                k = size[c]
+                at = np.cumsum(k) - k
+                body.append(pool[np.repeat(first[c] - at, k) + np.arange(int(k.sum()))].tobytes())
+    # the last sample has no separator after it: drop the final ", " (from the last non-empty chunk)
+    while not body[-1]:
+        body.pop()
+    body[-1] = memoryview(body[-1])[:-2]
+    return [b"["] + body + [b"]"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -201,7 +329,8 @@ class Trace:
             h = hashlib.sha256(f"tracegen-trace-v{SCHEMA_VERSION}\0{self.origin}\0".encode())
             for name in sorted(self.data):
                 h.update(name.encode() + b"\0")
-                h.update(_canonical_bytes(name, self.data[name]))
+                for chunk in _canonical_chunks(name, self.data[name]):
+                    h.update(chunk)
             cached = h.hexdigest()[:16]
             object.__setattr__(self, "_id", cached)
         return cached
@@ -250,8 +379,8 @@ class Trace:
         cells = self.data.get("cell")
         changes = float("nan")
         if cells is not None:
-            labels = [c for c in cells if c is not None]
-            changes = float(sum(1 for a, b in zip(labels, labels[1:]) if a != b))
+            labels = cells[~_none_mask(np.asarray(cells, dtype=object))]
+            changes = float(np.count_nonzero(labels[1:] != labels[:-1])) if labels.size > 1 else 0.0
         return {
             "samples": float(len(self)),
             "mean_bw_bps": float(known.mean()) if known.size else float("nan"),
@@ -345,7 +474,7 @@ class Trace:
                 out[name] = np.where(holds, arr[holder], None)
             elif name == "event":
                 ev = np.full(nbins, None, dtype=object)
-                marked = np.flatnonzero([e is not None for e in arr])
+                marked = np.flatnonzero(~_none_mask(arr))
                 for b, e in zip(bin_of[marked], arr[marked]):  # events are rare: a loop over events only
                     ev[b] = e if ev[b] is None else f"{ev[b]};{e}"
                 out[name] = ev
@@ -371,8 +500,7 @@ class Trace:
             kind = COLUMNS[name][0]
             typ = {"float": pa.float64(), "int": pa.int64(), "str": pa.string()}[kind]
             values = self.data[name]
-            arrays.append(pa.array(list(values) if kind == "str" else values, type=typ,
-                                   from_pandas=kind == "float"))
+            arrays.append(pa.array(values, type=typ, from_pandas=kind == "float"))
             fields.append(pa.field(name, typ))
         meta = json.dumps(self.meta(), sort_keys=True, default=_json_default).encode()
         schema = pa.schema(fields, metadata={b"tracegen": meta})
