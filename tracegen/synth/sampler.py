@@ -4,27 +4,31 @@ Grid. Sample k covers [k step, (k+1) step). Everything is built on a *base grid*
 model step h = ``model.step_s``: the output grid itself when step <= h, else step / r with
 r = ceil(step / h); a coarser output sample then averages its r base samples for the rate columns
 (bandwidth, loss) and takes the first one for the point columns (RTT, jitter, state), as the Trace
-schema reads rates and points.
+schema reads rates and points. Any step >= ``MIN_STEP_S`` works, a multiple of h or not.
 
-1. State path (hidden semi-Markov, in seconds). The first state is drawn from the state shares (or is
+1. State path (hidden semi-Markov). The first state is drawn from the state shares (or is
    ``start_state``) with a fresh dwell (not the equilibrium residual, so the first segment is a little
-   shorter on average than under a stationary start); then dwell ``DwellFit.sample_s`` and next state
-   from the ``model.jumps`` row, alternately. Dwells are drawn in bulk per state; the jump chain is
-   walked in a short Python loop over *segments* (one step per dwell of >= 1 s, so a few hundred per
-   hour of trace, against 360 000 samples at 10 ms), which is the only sequential part. A segment
-   covers the base samples whose start lies in it (the state of a sample is the state at its start);
-   a segment shorter than a base sample may hold none.
+   shorter on average than under a stationary start); then dwell and next state from the ``model.jumps``
+   row, alternately. A dwell is a draw X of the state's family (``DwellFit.sample_s``) rounded up to
+   whole steps of the fit, k = ceil(X / h) (``DwellFit.sample_steps``): the fit reads a dwell exactly
+   so (dwell.py), so at the model step the runs of a state follow the fitted discretised law, and
+   segments start on whole steps from the trace's start or from a switch. Dwells are drawn in bulk per
+   state; the jump chain is walked in one short Python loop over *segments* (a few hundred per hour of
+   trace, against 360 000 samples at 10 ms), the only sequential part. A segment covers the base
+   samples whose start lies in it (the state of a sample is the state at its start); a segment cut
+   short by a switch may hold none.
 2. Level. Per segment, ticks of h seconds from the segment's start; log bandwidth of a tick is the
    state mean + an AR residual with the state's ARFit, *restarted at every segment* from its stationary
-   distribution (the fit never glues segments either): p pre-sample values ~ N(0, Toeplitz(gamma)) give
-   the filter state, and all segments of a state are filtered at once by ``scipy.signal.lfilter`` on a
-   padded 2-D array (segments grouped by length class so padding at most doubles the work). A state
-   without an ARFit gets i.i.d. N(0, cov[0][0]). Finer base samples hold the tick's value. Outage
-   state: bandwidth exactly 0.
+   distribution (the fit never glues segments either): p pre-sample values ~ N(0, Toeplitz(gamma)).
+   All segments of a state are filtered at once by one ``scipy.signal.lfilter`` over their
+   concatenation; each segment's start is then corrected by superposition (the filter is linear): the
+   zero-input response of (its own pre-sample values - the p values the concatenated run had before
+   it) is added, which gives exactly the restarted process. A state without an ARFit gets i.i.d.
+   N(0, cov[0][0]). Finer base samples hold the tick's value. Outage state: bandwidth exactly 0.
 3. RTT, per tick and held like the level (the model says nothing below h). Joint models: log RTT from
-   the state's 2x2 covariance given the tick's log-bandwidth residual (conditional Gaussian). Otherwise
-   i.i.d. log-normal from ``state.rtt_log_ms`` (mean, sd), the residual correlation omitted; NaN where
-   the state has none.
+   the state's 2x2 covariance given the tick's log-bandwidth residual (conditional Gaussian: slope
+   cov01/cov00, sd sqrt(cov11 - cov01^2/cov00)). Otherwise i.i.d. log-normal from ``state.rtt_log_ms``
+   (mean, sd), the residual correlation omitted; NaN where the state has none.
 4. Loss. ``model.loss`` (Gilbert-Elliott) steps once per h on the trace's global grid from its
    stationary state (``GilbertElliott.sample``). With a state ``loss_mean`` the chain modulates it: a
    state loses b_s in bad ticks and a_s in good ones, b_s = min(1, c loss_bad), a_s = (loss_mean -
@@ -50,12 +54,11 @@ is the same whatever the count, order or worker split.
 from __future__ import annotations
 
 import math
-from bisect import bisect_right
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import linalg, special
+from scipy import linalg
 from scipy.signal import lfilter, lfiltic
 
 from ..errors import TracegenError
@@ -66,6 +69,8 @@ from .tilt import Tilt, TiltPlan, dwell_log_ratio
 MIN_STEP_S = 0.01
 STREAM_PART = 0  # spawn_key=(index, STREAM_PART): the sampler's stream in tracegen.synth.trace_rng
 _EPS = 1e-9
+_REL = 1e-12
+_ZIR_CAP = 1 << 16   # longest precomputed zero-input response (ticks); longer ones are computed on demand
 
 
 @dataclass(frozen=True, eq=False)
@@ -85,6 +90,17 @@ class SampledTrace:
         return len(self.t_s)
 
 
+def _ceil(x: np.ndarray | float) -> np.ndarray:
+    """ceil that forgives the rounding of a product or quotient landing a hair above a whole number."""
+    x = np.asarray(x, dtype=np.float64)
+    return np.ceil(x - _EPS - _REL * np.abs(x))
+
+
+def _floor(x: np.ndarray | float) -> np.ndarray:
+    x = np.asarray(x, dtype=np.float64)
+    return np.floor(x + _EPS + _REL * np.abs(x))
+
+
 # --------------------------------------------------------------------------------------------------
 # Per-model precomputation
 
@@ -101,6 +117,12 @@ def _ar_autocov(coefs: np.ndarray, sigma2: float) -> np.ndarray:
     return np.linalg.solve(a, rhs)
 
 
+def _zir(a: np.ndarray, zi_map: np.ndarray, length: int) -> np.ndarray:
+    """(p, length): row j is the AR's zero-input response to the pre-sample value y_-(j+1) = 1."""
+    p = zi_map.shape[0]
+    return lfilter([1.0], a, np.zeros((p, length)), axis=1, zi=zi_map)[0]
+
+
 @dataclass(frozen=True)
 class _Level:
     kind: str                 # "outage", "ar", "iid"
@@ -109,10 +131,26 @@ class _Level:
     sigma: float = 0.0                # innovation sd (ar) or marginal sd (iid)
     chol: np.ndarray | None = None    # Cholesky factor of the p x p stationary covariance
     zi_map: np.ndarray | None = None  # (p, p): pre-sample values (y_-1..y_-p) -> lfilter zi
+    zir: np.ndarray | None = None     # (p, L): zero-input responses, _zir(a, zi_map, L)
+    zir_complete: bool = True         # the responses are below 1e-17 after L ticks (else extend on demand)
 
 
-def _cum_rows(q: np.ndarray) -> list[list[float]]:
-    """Cumulative rows for bisect; the last positive entry is inf so u in [0, 1) never falls off."""
+def _ar_level(mean_log: float, coefs: np.ndarray, sigma2: float) -> _Level:
+    p = coefs.size
+    gamma = _ar_autocov(coefs, sigma2)
+    a = np.concatenate(([1.0], -coefs))
+    chol = np.linalg.cholesky(linalg.toeplitz(gamma[:p]))
+    zi_map = np.array([lfiltic([1.0], a, np.eye(p)[j]) for j in range(p)])
+    # length until the slowest mode has decayed below 1e-17 (t^(p-1) growth of repeated roots: margin)
+    rho = float(np.max(np.abs(np.roots(a)))) if p else 0.0
+    want = _ZIR_CAP if rho >= 1.0 else int(min(_ZIR_CAP, math.ceil(-40.0 / math.log(max(rho, 1e-300))) * 2 + 64))
+    g = _zir(a, zi_map, max(want, 1))
+    complete = bool(np.max(np.abs(g[:, -min(64, g.shape[1]):])) < 1e-17)
+    return _Level("ar", mean_log, a, math.sqrt(sigma2), chol, zi_map, g, complete)
+
+
+def _cum_rows(q: np.ndarray) -> np.ndarray:
+    """Cumulative rows for searchsorted; the last positive entry is inf so u in [0, 1) never falls off."""
     out = []
     for i, row in enumerate(np.atleast_2d(q)):
         c = np.cumsum(row)
@@ -122,18 +160,19 @@ def _cum_rows(q: np.ndarray) -> list[list[float]]:
             c[: i] = 0.0
         else:
             c[pos[-1]:] = np.inf
-        out.append(c.tolist())
-    return out
+        out.append(c)
+    return np.array(out)
 
 
 @dataclass(frozen=True)
 class _Plan:
     tilt: TiltPlan
-    start_cum: list[float]
-    jump_cum: list[list[float]]
-    post_cum: np.ndarray | None
+    start_cum: np.ndarray
+    jump_cum: np.ndarray           # (n, n)
     mean_dwell_s: float
+    quantum_s: np.ndarray          # (n,) the step each state's dwell is rounded up to
     levels: tuple[_Level, ...]
+    mean_log: np.ndarray           # (n,) state mean of log bandwidth, -inf for an outage
     rtt_mu: np.ndarray
     rtt_beta: np.ndarray
     rtt_sd: np.ndarray
@@ -146,8 +185,9 @@ def _build_plan(model: Any, tilt: Tilt | None) -> _Plan:
     tp = TiltPlan.build(model, tilt)
     n = model.n_states
     states = model.states
+    quantum = np.array([f.step_s for f in tp.dwell_q], dtype=np.float64)
     # mean dwell under q along the tilted embedded chain: sizes the first batch of dwell draws
-    means = np.array([f.mean_s for f in tp.dwell_q])
+    means = np.array([f.mean_s for f in tp.dwell_q]) + quantum / 2
     try:
         w, v = np.linalg.eig(tp.jump_q.T)
         nu = np.abs(np.real(v[:, np.argmin(np.abs(w - 1.0))]))
@@ -177,12 +217,7 @@ def _build_plan(model: Any, tilt: Tilt | None) -> _Plan:
         elif ar.order == 0:
             levels.append(_Level("iid", s.mean[0], sigma=math.sqrt(ar.sigma2)))
         else:
-            phi = np.asarray(ar.coefs, dtype=np.float64)
-            gamma = _ar_autocov(phi, ar.sigma2)
-            a = np.concatenate(([1.0], -phi))
-            chol = np.linalg.cholesky(linalg.toeplitz(gamma[: phi.size]))
-            zi_map = np.array([lfiltic([1.0], a, np.eye(phi.size)[j]) for j in range(phi.size)])
-            levels.append(_Level("ar", s.mean[0], a, math.sqrt(ar.sigma2), chol, zi_map))
+            levels.append(_ar_level(s.mean[0], np.asarray(ar.coefs, dtype=np.float64), ar.sigma2))
     outage = np.array([s.kind == "outage" for s in states])
     loss_tab = np.full((n, 2), np.nan)
     ge = model.loss
@@ -202,11 +237,9 @@ def _build_plan(model: Any, tilt: Tilt | None) -> _Plan:
                 bad = min(1.0, lm / stat * ge.loss_bad)
                 loss_tab[i] = (min(max((lm - pi * bad) / (1.0 - pi), 0.0), 1.0), bad)
     loss_tab[outage] = 1.0
-    post_cum = None
-    if tp.post_q is not None:
-        post_cum = np.array(_cum_rows(tp.post_q[None, :])[0])
-    return _Plan(tp, _cum_rows(tp.start_q[None, :])[0], _cum_rows(tp.jump_q), post_cum, mean_dwell,
-                 tuple(levels), rtt_mu, rtt_beta, rtt_sd, has_rtt, loss_tab, outage)
+    mean_log = np.array([-np.inf if lv.kind == "outage" else lv.mean_log for lv in levels])
+    return _Plan(tp, _cum_rows(tp.start_q[None, :])[0], _cum_rows(tp.jump_q), mean_dwell, quantum,
+                 tuple(levels), mean_log, rtt_mu, rtt_beta, rtt_sd, has_rtt, loss_tab, outage)
 
 
 _LAST: tuple[Any, Any, _Plan] | None = None
@@ -227,71 +260,119 @@ def _plan(model: Any, tilt: Tilt | None) -> _Plan:
 # State path
 
 
-def _walk(plan: _Plan, model: Any, rng: np.random.Generator, t0: float, t1: float,
-          first: int) -> tuple[np.ndarray, np.ndarray, float]:
-    """Segments covering [t0, t1) from state ``first``: (starts_s, states, log p/q of jumps and dwells)."""
-    need = t1 - t0
-    batch = int(need / plan.mean_dwell_s * 1.25) + 8
-    cum = plan.jump_cum
-    states_parts: list[np.ndarray] = []
-    dwell_parts: list[np.ndarray] = []
-    total = 0.0
-    s = first
-    fresh = True
-    while total < need:  # a loop over batches of segments
-        u = rng.random(batch - 1 if fresh else batch).tolist()
-        chain = [first] if fresh else []
-        for x in u:  # the jump chain: one step per segment
-            s = bisect_right(cum[s], x)
-            chain.append(s)
-        fresh = False
-        st = np.array(chain, dtype=np.int64)
-        dw = np.empty(st.size)
-        for k in np.unique(st).tolist():  # dwells in bulk, per state
-            idx = np.flatnonzero(st == k)
-            dw[idx] = plan.tilt.dwell_q[k].sample_s(rng, idx.size)
-        states_parts.append(st)
-        dwell_parts.append(dw)
-        total += float(dw.sum())
-        batch = max(8, int((need - total) / plan.mean_dwell_s * 1.25) + 8)
-    states = np.concatenate(states_parts)
-    dwells = np.concatenate(dwell_parts)
-    ends = np.cumsum(dwells)
-    used = 1 + int(np.searchsorted(ends, need, side="left"))
-    states, dwells = states[:used], dwells[:used]
-    starts = t0 + np.concatenate(([0.0], ends[: used - 1]))
-    llr = 0.0
-    tp = plan.tilt
-    if not tp.identity:
-        if used > 1:
-            llr += float(tp.jump_log_ratio[states[:-1], states[1:]].sum())
-        for k in np.flatnonzero(tp.dwell_scale != 1.0).tolist():
-            sel = states == k
-            if sel.any():
-                llr += float(dwell_log_ratio(model.states[k].dwell, float(tp.dwell_scale[k]), dwells[sel]).sum())
-    return starts, states, llr
+def _run_chain(nxt: np.ndarray) -> np.ndarray:
+    """The states s_t = nxt[t, s_(t-1)] of a chain given its transition table (T, n) (row 0 constant).
+
+    Sequential in t, so done in blocks of B ~ sqrt(T) rows: first each block's map from its entry state
+    to its exit state (B numpy steps over all blocks at once), then the entry states block by block (a
+    short Python loop over blocks), then the states inside all blocks (B more numpy steps).
+    """
+    total, n = nxt.shape
+    size = max(1, math.isqrt(total))
+    blocks = -(-total // size)
+    pad = blocks * size - total
+    if pad:  # identity rows: the chain stays where it is
+        nxt = np.concatenate((nxt, np.broadcast_to(np.arange(n), (pad, n))))
+    tab = nxt.reshape(blocks, size, n)
+    exit_of = np.broadcast_to(np.arange(n), (blocks, n))
+    for j in range(size):  # a loop over the rows of a block
+        exit_of = np.take_along_axis(tab[:, j, :], exit_of, axis=1)
+    entry = np.empty(blocks, dtype=np.int64)
+    s = 0
+    for i, row in enumerate(exit_of.tolist()):  # a loop over blocks
+        entry[i] = s
+        s = row[s]
+    out = np.empty((blocks, size), dtype=np.int64)
+    rows = np.arange(blocks)
+    s_vec = entry
+    for j in range(size):  # a loop over the rows of a block
+        s_vec = tab[rows, j, s_vec]
+        out[:, j] = s_vec
+    return out.reshape(-1)[:total]
 
 
 def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float, start_state: int | None,
                 switches: list[tuple[float, int]]) -> tuple[np.ndarray, np.ndarray, float]:
-    """The whole path: a walk from the first state, restarted at each switch (time, state)."""
+    """Segments covering [0, end_s): (starts_s, states, log p/q of the choices and dwells).
+
+    The path is a walk from the first state, restarted with a fresh dwell at each switch (time, state);
+    all the walks ("pieces") advance together, one batch of segments per round.
+    """
     llr = 0.0
+    tp = plan.tilt
     if start_state is None:
-        first = bisect_right(plan.start_cum, float(rng.random()))
-        llr += float(plan.tilt.start_log_ratio[first])
+        first = int(np.searchsorted(plan.start_cum, rng.random(), side="right"))
+        llr += float(tp.start_log_ratio[first])
     else:
-        first = start_state
-    pieces = [(0.0, first)] + [(t, k) for t, k in sorted(switches) if 0.0 < t < end_s]
-    starts, states = [], []
-    for i, (t0, k) in enumerate(pieces):  # a loop over events
-        t1 = pieces[i + 1][0] if i + 1 < len(pieces) else end_s
-        if t1 <= t0:
-            continue
-        st, ss, lr = _walk(plan, model, rng, t0, t1, k)
-        starts.append(st)
-        states.append(ss)
-        llr += lr
-    return np.concatenate(starts), np.concatenate(states), llr
+        first = int(start_state)
+    pieces = [(0.0, first)] + [(float(t), int(k)) for t, k in sorted(switches) if 0.0 < t < end_s]
+    t0 = np.array([p[0] for p in pieces])
+    k0 = np.array([p[1] for p in pieces], dtype=np.int64)
+    t1 = np.append(t0[1:], end_s)
+    keep = t1 > t0
+    t0, k0, need = t0[keep], k0[keep], (t1 - t0)[keep]
+
+    n_states = model.n_states
+    cum = plan.jump_cum
+    quantum = plan.quantum_s
+    q_min = float(quantum.min())
+    covered = np.zeros(t0.size)
+    last = k0.copy()
+    fresh = np.ones(t0.size, dtype=bool)
+    active = np.arange(t0.size)
+    out_piece, out_start, out_state, out_prev, out_x = [], [], [], [], []
+    while active.size:  # a loop over rounds: nearly always one
+        rem = need[active] - covered[active]
+        m = np.minimum(np.ceil(rem / q_min) + 1, np.ceil(rem / plan.mean_dwell_s * 1.1) + 3).astype(np.int64)
+        total = int(m.sum())
+        offs = np.cumsum(m) - m
+        u = rng.random(total)
+        # next state from every state for each draw; the first row of a piece is fixed (its start
+        # state, or a jump from where it stopped)
+        nxt = np.empty((total, n_states), dtype=np.int64)
+        for k in range(n_states):  # a loop over states
+            nxt[:, k] = np.searchsorted(cum[k], u, side="right")
+        nxt[offs] = np.where(fresh[active], k0[active], nxt[offs, last[active]])[:, None]
+        st = _run_chain(nxt)
+        x = np.empty(total)
+        for k in np.unique(st).tolist():  # dwells in bulk, per state
+            idx = np.flatnonzero(st == k)
+            x[idx] = tp.dwell_q[k].sample_s(rng, idx.size)
+        qs = quantum[st]
+        d = np.maximum(_ceil(x / qs), 1.0) * qs
+        prev = np.empty(total, dtype=np.int64)
+        prev[1:] = st[:-1]
+        prev[offs] = np.where(fresh[active], -1, last[active])
+        piece = np.repeat(active, m)
+        ends = np.cumsum(d)
+        base = np.repeat(ends[offs] - d[offs], m)
+        local = ends - d - base                      # start within this round's run of the piece
+        use = local < np.repeat(rem, m)
+        out_piece.append(piece[use])
+        out_start.append(t0[piece[use]] + covered[piece[use]] + local[use])
+        out_state.append(st[use])
+        out_prev.append(prev[use])
+        out_x.append(x[use])
+        run = ends[offs + m - 1] - base[offs]          # time covered by this round, per piece
+        short = run < rem
+        covered[active] += run
+        last[active] = st[offs + m - 1]
+        fresh[active] = False
+        active = active[short]
+    piece = np.concatenate(out_piece)
+    order = np.lexsort((np.concatenate(out_start), piece))
+    starts = np.concatenate(out_start)[order]
+    states = np.concatenate(out_state)[order]
+    if not tp.identity:
+        prev = np.concatenate(out_prev)[order]
+        x = np.concatenate(out_x)[order]
+        jumped = prev >= 0
+        llr += float(tp.jump_log_ratio[prev[jumped], states[jumped]].sum())
+        for k in np.flatnonzero(tp.dwell_scale != 1.0).tolist():
+            sel = states == k
+            if sel.any():
+                llr += float(dwell_log_ratio(model.states[k].dwell, float(tp.dwell_scale[k]), x[sel]).sum())
+    return starts, states, llr
 
 
 # --------------------------------------------------------------------------------------------------
@@ -299,43 +380,50 @@ def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float,
 
 
 def _ar_residuals(level: _Level, rng: np.random.Generator, lengths: np.ndarray) -> np.ndarray:
-    """Concatenated stationary AR residual segments of the given tick lengths (each restarted)."""
+    """Concatenated stationary AR residual segments of the given tick lengths (> 0), each restarted."""
     total = int(lengths.sum())
+    e = rng.standard_normal(total)
+    e *= level.sigma
     if level.kind == "iid":
-        return level.sigma * rng.standard_normal(total)
+        return e
     p = level.chol.shape[0]
-    e = level.sigma * rng.standard_normal(total)
-    zi = (rng.standard_normal((lengths.size, p)) @ level.chol.T) @ level.zi_map
-    out = np.empty(total)
-    offsets = np.concatenate(([0], np.cumsum(lengths)))
-    cls = np.ceil(np.log2(np.maximum(lengths, 1))).astype(np.int64)
-    for c in np.unique(cls).tolist():  # a loop over length classes (<= ~20)
-        rows = np.flatnonzero(cls == c)
-        lens = lengths[rows]
-        width = int(lens.max())
-        mask = np.arange(width)[None, :] < lens[:, None]
-        cols = np.arange(width)[None, :]
-        src = np.where(mask, offsets[rows][:, None] + cols, 0)
-        x = np.where(mask, e[src], 0.0)
-        y, _ = lfilter([1.0], level.a, x, axis=1, zi=zi[rows])
-        out[src[mask]] = y[mask]
-    return out
+    m = lengths.size
+    w = rng.standard_normal((m, p)) @ level.chol.T          # each segment's pre-sample (y_-1 .. y_-p)
+    y = lfilter([1.0], level.a, e)                           # all segments glued, from rest
+    starts = np.cumsum(lengths) - lengths
+    lag = starts[:, None] - np.arange(1, p + 1)[None, :]
+    seen = np.where(lag >= 0, y[np.maximum(lag, 0)], 0.0)    # what the glued run had before each segment
+    delta = w - seen
+    g = level.zir
+    longest = int(lengths.max())
+    if g.shape[1] < longest and not level.zir_complete:
+        g = _zir(level.a, level.zi_map, longest)
+    span = np.minimum(lengths, g.shape[1])                   # beyond it the response is below 1e-17
+    covered = int(span.sum())
+    off = np.arange(covered) - np.repeat(np.cumsum(span) - span, span)
+    corr = np.repeat(delta[:, 0], span) * g[0, off]
+    for k in range(1, p):  # a loop over lags (p <= 5)
+        corr += np.repeat(delta[:, k], span) * g[k, off]
+    if covered == total:
+        y += corr
+    else:
+        y[np.repeat(starts, span) + off] += corr
+    return y
+
+
+def _merge_sorted(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """The sorted union of two sorted integer arrays (timsort merges the two runs in linear time)."""
+    c = np.sort(np.concatenate((a, b)), kind="stable")
+    keep = np.ones(c.size, dtype=bool)
+    keep[1:] = c[1:] != c[:-1]
+    return c[keep]
 
 
 def _span(t0: np.ndarray, t1: np.ndarray, b: float, nb: int) -> tuple[np.ndarray, np.ndarray]:
     """Base samples [i0, i1) whose start lies in [t0, t1)."""
-    i0 = np.minimum(np.ceil(np.asarray(t0) / b - _EPS), nb).astype(np.int64)
-    i1 = np.minimum(np.ceil(np.asarray(t1) / b - _EPS), nb).astype(np.int64)
+    i0 = np.minimum(_ceil(np.asarray(t0) / b), nb).astype(np.int64)
+    i1 = np.minimum(_ceil(np.asarray(t1) / b), nb).astype(np.int64)
     return i0, i1
-
-
-def _cover(i0: np.ndarray, i1: np.ndarray, nb: int) -> np.ndarray:
-    """Boolean mask of the union of the index ranges [i0, i1) (a difference array, no loop)."""
-    d = np.zeros(nb + 1, dtype=np.int64)
-    keep = i1 > i0
-    np.add.at(d, i0[keep], 1)
-    np.add.at(d, i1[keep], -1)
-    return np.cumsum(d[:-1]) > 0
 
 
 def _apply_events(ev: EventDraw, b: float, nb: int, bw: np.ndarray, loss: np.ndarray, rtt: np.ndarray | None,
@@ -353,24 +441,27 @@ def _apply_events(ev: EventDraw, b: float, nb: int, bw: np.ndarray, loss: np.nda
             loss[a:z] = np.fmax(loss[a:z], level)
     if len(ev.breaks):
         i0, i1 = _span(ev.breaks[:, 0], ev.breaks[:, 1], b, nb)
-        off = _cover(i0, i1, nb)
-        bw[off] = 0.0
-        loss[off] = 1.0
-        if rtt is not None:
-            rtt[off] = np.nan
-            jit[off] = np.nan
+        for a, z in zip(i0.tolist(), i1.tolist()):  # a loop over events
+            if z > a:
+                bw[a:z] = 0.0
+                loss[a:z] = 1.0
+                if rtt is not None:
+                    rtt[a:z] = np.nan
+                    jit[a:z] = np.nan
 
 
 def _tick_counts(n_samples: np.ndarray, ratio: float) -> tuple[np.ndarray, np.ndarray]:
     """Ticks of h = ratio base samples over runs of ``n_samples``: (ticks per run, base samples per tick)."""
-    ticks = np.maximum(np.ceil(n_samples / ratio - _EPS), 1).astype(np.int64)
+    ticks = np.maximum(_ceil(n_samples / ratio), 1).astype(np.int64)
     ticks[n_samples == 0] = 0
+    if ratio == 1.0:
+        return ticks, np.ones(int(ticks.sum()), dtype=np.int64)
     total = int(ticks.sum())
     first = np.repeat(np.cumsum(ticks) - ticks, ticks)
     j = np.arange(total) - first
     size = np.repeat(n_samples, ticks)
-    lo = np.minimum(np.ceil(j * ratio - _EPS), size)
-    hi = np.minimum(np.ceil((j + 1) * ratio - _EPS), size)
+    lo = np.minimum(_ceil(j * ratio), size)
+    hi = np.minimum(_ceil((j + 1) * ratio), size)
     return ticks, (hi - lo).astype(np.int64)
 
 
@@ -380,14 +471,15 @@ def _check_args(model: Any, duration_s: float, step_s: float, start_state: int |
         if isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating)) or not math.isfinite(v):
             raise TracegenError(f"must be a finite number of seconds, got {v!r}", field=name)
     if duration_s <= 0:
-        raise TracegenError(f"must be > 0, got {duration_s}", field="duration_s")
-    if step_s < MIN_STEP_S:
-        raise TracegenError(f"must be at least {MIN_STEP_S} s, got {step_s}", field="step_s")
+        raise TracegenError(f"must be > 0, got {duration_s}", field="duration_s", hint="give a positive duration")
+    if step_s < MIN_STEP_S * (1 - 1e-9):
+        raise TracegenError(f"must be at least {MIN_STEP_S} s (10 ms), got {step_s}", field="step_s",
+                            hint="use a step of 10 ms or more; any value from there up works")
     if start_state is not None:
         if isinstance(start_state, bool) or not isinstance(start_state, (int, np.integer)) \
                 or not 0 <= start_state < model.n_states:
             raise TracegenError(f"must be a state index 0..{model.n_states - 1}, got {start_state!r}",
-                                field="start_state")
+                                field="start_state", hint="see `tracegen model show` for the states")
     if handover is not None and not isinstance(handover, HandoverPlan):
         raise TracegenError(f"must be a HandoverPlan, got {type(handover).__name__}", field="handover")
 
@@ -403,8 +495,9 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
     _check_args(model, duration_s, step_s, start_state, handover)
     plan = _plan(model, tilt)
     h = float(model.step_s)
-    n = max(1, int(math.ceil(duration_s / step_s - _EPS)))
-    r = 1 if step_s <= h * (1 + _EPS) else int(math.ceil(step_s / h - _EPS))
+    step_s = float(step_s)
+    n = max(1, int(_ceil(duration_s / step_s)))
+    r = 1 if step_s <= h * (1 + _EPS) else int(_ceil(step_s / h))
     b = step_s / r
     nb = n * r
     ratio = h / b
@@ -416,26 +509,30 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
     llr += ev.llr
 
     # segments on the base grid: a segment holds the base samples whose start lies in it
-    k0 = np.minimum(np.ceil(starts / b - _EPS).astype(np.int64), nb)
+    k0 = np.minimum(_ceil(starts / b).astype(np.int64), nb)
     k0[0] = 0
     seg_n = np.diff(np.append(k0, nb))
     ticks, tick_n = _tick_counts(seg_n, ratio)
     tick_state = np.repeat(seg_state, ticks)
     n_ticks = tick_state.size
 
-    resid = np.zeros(n_ticks)
-    log_bw = np.full(n_ticks, -np.inf)
+    # residuals state by state (segments of one state filtered together), then put in time order
+    order = np.argsort(seg_state, kind="stable")
+    lens_o = ticks[order]
+    first_tick = np.cumsum(ticks) - ticks
+    perm = np.repeat(first_tick[order] - (np.cumsum(lens_o) - lens_o), lens_o) + np.arange(n_ticks)
+    buf = np.zeros(n_ticks)
+    bounds = np.concatenate(([0], np.cumsum(np.bincount(seg_state, minlength=len(plan.levels)))))
+    at = 0
     for s, level in enumerate(plan.levels):  # a loop over states
-        if level.kind == "outage":
-            continue
-        sel = seg_state == s
-        if not np.any(sel & (ticks > 0)):
-            continue
-        pos = np.flatnonzero(tick_state == s)
-        lens = ticks[sel]
-        resid[pos] = _ar_residuals(level, rng, lens[lens > 0])
-        log_bw[pos] = level.mean_log + resid[pos]
-    bw_tick = np.exp(log_bw)
+        lens = lens_o[bounds[s]:bounds[s + 1]]
+        width = int(lens.sum())
+        if level.kind != "outage" and width:
+            buf[at:at + width] = _ar_residuals(level, rng, lens[lens > 0])
+        at += width
+    resid = np.empty(n_ticks)
+    resid[perm] = buf
+    bw_tick = np.exp(plan.mean_log[tick_state] + resid)
 
     if plan.has_rtt.any():
         z = rng.standard_normal(n_ticks)
@@ -446,36 +543,57 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
     else:
         rtt_tick = jit_tick = None
 
-    bw = np.repeat(bw_tick, tick_n)
-    state = np.repeat(seg_state, seg_n)
+    # Every base column is constant between tick boundaries and chain-step boundaries ("cells"), so one
+    # table of cells x (t, bandwidth, RTT, loss, jitter, state) is repeated into one block of base
+    # columns (a single allocation, big enough for huge pages); the state row holds int64 bits.
+    tick_at = np.cumsum(tick_n) - tick_n                       # first base sample of each tick
     if model.loss is not None:
-        _, g_n = _tick_counts(np.array([nb]), ratio)
+        g_n = _tick_counts(np.array([nb]), ratio)[1]
         ge, _ = model.loss.sample(rng, g_n.size)
-        loss = plan.loss_tab.ravel()[state * 2 + np.repeat(ge.astype(np.int64), g_n)]
+        if np.array_equal(g_n, tick_n):
+            at, ti, gi = tick_at, slice(None), ge
+        else:
+            ge_at = np.cumsum(g_n) - g_n
+            at = _merge_sorted(tick_at, ge_at)
+            ti = np.searchsorted(tick_at, at, side="right") - 1
+            gi = ge[np.searchsorted(ge_at, at, side="right") - 1]
+        cell_state = tick_state[ti]
+        cell_loss = plan.loss_tab[cell_state, gi]
     else:
-        loss = plan.loss_tab[state, 0]
-    if rtt_tick is not None:
-        rtt = np.repeat(rtt_tick, tick_n)
-        jit = np.repeat(jit_tick, tick_n)
-    else:
-        rtt = np.full(nb, np.nan)
-        jit = rtt
-
-    _apply_events(ev, b, nb, bw, loss, rtt if rtt_tick is not None else None,
-                  jit if rtt_tick is not None else None)
-
+        at, ti = tick_at, slice(None)
+        cell_state = tick_state
+        cell_loss = plan.loss_tab[cell_state, 0]
+    table = np.empty((6, at.size))
+    table[0] = 0.0
+    table[1] = bw_tick[ti]
+    table[2] = np.nan if rtt_tick is None else rtt_tick[ti]
+    table[3] = cell_loss
+    table[4] = np.nan if jit_tick is None else jit_tick[ti]
+    table[5].view(np.int64)[:] = cell_state
+    base = np.repeat(table, np.diff(np.append(at, nb)), axis=1) if at.size != nb else table
+    _, bw, rtt, loss, jit = base[:5]
+    _apply_events(ev, b, nb, bw, loss, rtt if rtt_tick is not None else None, jit)
     if r > 1:
-        bw = bw.reshape(n, r).mean(axis=1)
-        loss = loss.reshape(n, r).mean(axis=1)
-        rtt, jit, state = rtt[::r].copy(), jit[::r].copy(), state[::r].copy()
-    elif rtt_tick is None:
-        jit = rtt.copy()
+        block = np.empty((6, n))
+        np.mean(bw.reshape(n, r), axis=1, out=block[1])
+        np.mean(loss.reshape(n, r), axis=1, out=block[3])
+        block[2], block[4], block[5] = rtt[::r], jit[::r], base[5, ::r]
+    else:
+        block = base
+    t_s, bw_o, rtt_o, loss_o, jit_o = block[:5]
+    state_o = block[5].view(np.int64)
+    t_s[:] = np.arange(n)
+    t_s *= step_s
     event = np.empty(n, dtype=object)
-    for t, kind in sorted(ev.marks, reverse=True):  # a loop over events; the earliest is written last
-        i = int(t / b) // r
-        if i < n:
-            event[i] = kind
-    return SampledTrace(np.arange(n) * float(step_s), bw, rtt, loss, jit, state, event, float(llr))
+    if ev.marks:
+        order = sorted(range(len(ev.marks)), key=lambda j: ev.marks[j])  # by time, then kind
+        times = np.array([ev.marks[j][0] for j in order])
+        at = _floor(times / step_s).astype(np.int64)
+        inside = (at >= 0) & (at < n)
+        at_u, first = np.unique(at[inside], return_index=True)   # in one sample the earliest event wins
+        kinds = np.array([ev.marks[j][1] for j in order], dtype=object)[inside]
+        event[at_u] = kinds[first]
+    return SampledTrace(t_s, bw_o, rtt_o, loss_o, jit_o, state_o, event, float(llr))
 
 
 def trace_generator(seed: int, index: int) -> np.random.Generator:
@@ -491,6 +609,8 @@ def sample_traces(model: Any, count: int, duration_s: float, step_s: float, seed
     """Traces ``start .. start+count-1``, trace i from ``trace_generator(seed, i)``; ``kw`` go to sample_trace."""
     if isinstance(count, bool) or not isinstance(count, (int, np.integer)) or count < 1:
         raise TracegenError(f"must be an integer >= 1, got {count!r}", field="count")
+    if isinstance(start, bool) or not isinstance(start, (int, np.integer)) or start < 0:
+        raise TracegenError(f"must be an integer >= 0, got {start!r}", field="start")
     return [sample_trace(model, duration_s, step_s, trace_generator(seed, i), **kw)
             for i in range(start, start + count)]
 
