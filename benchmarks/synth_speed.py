@@ -2,12 +2,24 @@
 
 Usage: python benchmarks/synth_speed.py [--quick] [--model models/quillon-lte.json]
 
-- synth_vs_hmmlearn: samples/s of tracegen's sampler (levels + AR + loss, no cross traffic) over
-  samples/s of hmmlearn's GaussianHMM.sample on a model of the same size (target >= 100).
-- synth_vs_rng: the same samples/s over numpy's standard_normal draws/s on this machine, the floor
-  (target >= 0.25); synth_full_vs_rng with cross traffic, a bottleneck and handovers (target >= 0.1).
-- stream: samples streamed to Parquet with the peak RSS (full run: 10^9 samples, target < 1 GB; --quick:
-  10^7). The last line is a JSON object with all figures.
+Every figure is samples per second of *output* samples, best of a few runs, and every ratio divides two
+figures measured in this run on this machine:
+
+- the floor: numpy's ``Generator.standard_normal`` draws/s (one number per sample is the least any
+  sampler must produce);
+- sampler: ``tracegen.synth.sampler.sample_trace`` (state path, levels + AR residuals, RTT, jitter,
+  Gilbert-Elliott loss, the model's own handovers and outages; no cross traffic, no Trace object) at
+  output steps of 10 ms, 100 ms and the model's own step, each trace holding the same number of samples;
+- hmmlearn: ``GaussianHMM.sample`` on a model with as many states, per sample;
+- synth_one: ``tracegen.synth.synth_one`` at 10 ms, i.e. the sampler plus the validated Trace with its
+  content id; and with cross traffic, a CoDel bottleneck and 2 handovers/min (the "full" figure);
+- stream: samples streamed to one Parquet file (full run: 10^9 samples, target peak RSS < 1 GB;
+  --quick: 10^7), in a subprocess so its peak RSS is its own.
+
+Headline ratios (targets): ``synth_vs_rng`` = sampler at 10 ms / floor (>= 0.25);
+``synth_vs_hmmlearn`` = sampler at the model step / hmmlearn (>= 100; the model step is where one
+sample is one step of each model, the fair comparison); ``synth_full_vs_rng`` = full synth_one at 10 ms
+/ floor (>= 0.1). The ratios at the other steps are printed too. The last line is a JSON object.
 """
 
 from __future__ import annotations
@@ -21,9 +33,9 @@ import time
 from pathlib import Path
 
 import numpy as np
-from hmmlearn.hmm import GaussianHMM
 
 ROOT = Path(__file__).resolve().parents[1]
+HEADLINE_STEP_S = 0.01
 
 
 def per_second(fn, samples: int, repeat: int = 3) -> float:
@@ -37,7 +49,6 @@ def per_second(fn, samples: int, repeat: int = 3) -> float:
 
 def stream_child(model_path: str, samples: int, out: str) -> None:
     """Run in a subprocess: stream ``samples`` samples to one Parquet file in row groups, print peak RSS."""
-    import pyarrow as pa
     import pyarrow.parquet as pq
 
     from tracegen import load_model
@@ -45,21 +56,35 @@ def stream_child(model_path: str, samples: int, out: str) -> None:
 
     model = load_model(model_path)
     per_trace = 3600 * 100  # one hour at 10 ms
-    count = max(1, samples // per_trace)
+    count = max(1, -(-samples // per_trace))
     writer = None
+    start = time.perf_counter()
     for tr in iter_synth(model, count, 3600.0, 0.01, seed=1):
         table = tr.to_arrow().replace_schema_metadata(None)
         if writer is None:
             writer = pq.ParquetWriter(out, table.schema, compression="zstd")
         writer.write_table(table)
+        del tr, table
     writer.close()
-    print(json.dumps({"samples": count * per_trace,
+    print(json.dumps({"samples": count * per_trace, "seconds": time.perf_counter() - start,
                       "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+
+
+def hmmlearn_rate(k: int, n: int) -> float:
+    from hmmlearn.hmm import GaussianHMM
+
+    ref = GaussianHMM(n_components=k, covariance_type="diag")
+    ref.startprob_ = np.full(k, 1.0 / k)
+    off = 0.1 / max(k - 1, 1)
+    ref.transmat_ = np.full((k, k), off) + np.eye(k) * (0.9 - off)
+    ref.means_ = np.linspace(13.0, 17.0, k)[:, None]
+    ref.covars_ = np.full((k, 1), 0.05)
+    return per_second(lambda: ref.sample(n, random_state=0), n, repeat=1)
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--quick", action="store_true")
+    ap.add_argument("--quick", action="store_true", help="shorter traces, a 10^7-sample stream (under a minute)")
     ap.add_argument("--model", default=str(ROOT / "models" / "quillon-lte.json"))
     ap.add_argument("--stream-child", nargs=2, metavar=("SAMPLES", "OUT"), help=argparse.SUPPRESS)
     args = ap.parse_args()
@@ -68,50 +93,97 @@ def main() -> None:
         return
 
     from tracegen import load_model
-    from tracegen.synth import synth_one
+    from tracegen.synth import model_digest, synth_one
     from tracegen.synth.bottleneck import Bottleneck
     from tracegen.synth.crosstraffic import CrossTraffic
-    from tracegen.synth.scenario import HandoverPlan
+    from tracegen.synth.events import HandoverPlan
+    from tracegen.synth.sampler import sample_trace, trace_generator
 
     model = load_model(args.model)
-    duration_s, step_s = (600.0, 0.01) if args.quick else (3600.0, 0.01)
-    n = int(duration_s / step_s)
+    h = float(model.step_s)
+    n = 360_000 if args.quick else 3_600_000      # samples per trace: 1 h (10 h) at 10 ms
+    repeat = 3 if args.quick else 5
+    rng = np.random.default_rng(0)
 
-    ours = per_second(lambda: synth_one(model, 0, duration_s, step_s, 1), n)
+    def floor() -> float:
+        return per_second(lambda: rng.standard_normal(n), n, repeat=repeat)
+
+    steps = sorted({HEADLINE_STEP_S, 0.1, h})
+    sample_trace(model, 60.0, HEADLINE_STEP_S, trace_generator(1, 0))  # warm the per-model plan
+    floors = [floor()]
+    sampler = {}
+    for step in steps:
+        sampler[step] = per_second(lambda: sample_trace(model, n * step, step, trace_generator(1, 0)), n, repeat)
+        floors.append(floor())
+    rng_rate = max(floors)  # the floor at its best, so the ratios are never flattered by a slow moment
+
+    n_one = 360_000
+    digest = model_digest(model)  # once per run, as iter_synth does
+    one = per_second(lambda: synth_one(model, 0, n_one * HEADLINE_STEP_S, HEADLINE_STEP_S, 1, digest=digest).id,
+                     n_one, repeat)
     full_opts = dict(cross_traffic=CrossTraffic(flow_rate_per_s=0.5),
                      bottleneck=Bottleneck(buffer_ms=100.0, policy="codel"),
                      handover=HandoverPlan(rate_per_min=2.0))
-    full = per_second(lambda: synth_one(model, 0, duration_s, step_s, 1, **full_opts), n, repeat=1)
-    rng = np.random.default_rng(0)
-    floor = per_second(lambda: rng.standard_normal(n), n)
+    try:
+        full = per_second(lambda: synth_one(model, 0, n_one * HEADLINE_STEP_S, HEADLINE_STEP_S, 1, digest=digest,
+                                            **full_opts).id, n_one, repeat=1)
+        full_error = None
+    except Exception as exc:  # owned by the synth module; report rather than hide the other figures
+        full, full_error = float("nan"), f"{type(exc).__name__}: {exc}"
+    floors.append(floor())
+    rng_rate = max(floors)
 
-    k = model.n_states
-    ref = GaussianHMM(n_components=k, covariance_type="diag")
-    ref.startprob_ = np.full(k, 1.0 / k)
-    ref.transmat_ = np.full((k, k), 0.1 / max(k - 1, 1)) + np.eye(k) * (0.9 - 0.1 / max(k - 1, 1))
-    ref.means_ = np.linspace(13.0, 17.0, k)[:, None]
-    ref.covars_ = np.full((k, 1), 0.05)
-    ref_n = min(n, 200_000)
-    hmm = per_second(lambda: ref.sample(ref_n, random_state=0), ref_n, repeat=1)
+    hmm = hmmlearn_rate(model.n_states, 20_000 if args.quick else 100_000)
 
     stream_samples = 10**7 if args.quick else 10**9
-    out = Path("/tmp") / "tracegen-stream-bench.parquet"
-    child = subprocess.run([sys.executable, __file__, "--model", args.model, "--stream-child",
-                            str(stream_samples), str(out)], capture_output=True, text=True, check=True)
-    stream = json.loads(child.stdout.strip().splitlines()[-1])
-    out.unlink(missing_ok=True)
+    out = Path("/tmp") / f"tracegen-stream-bench-{int(time.time() * 1000)}.parquet"
+    try:
+        child = subprocess.run([sys.executable, __file__, "--model", args.model, "--stream-child",
+                                str(stream_samples), str(out)], capture_output=True, text=True)
+        if child.returncode:
+            stream = {"samples": 0, "seconds": float("nan"), "peak_rss_mib": float("nan"),
+                      "error": child.stderr.strip().splitlines()[-1] if child.stderr.strip() else "failed"}
+        else:
+            stream = json.loads(child.stdout.strip().splitlines()[-1])
+    finally:
+        out.unlink(missing_ok=True)
 
-    result = {"samples_per_s": ours, "samples_per_s_full": full, "hmmlearn_samples_per_s": hmm,
-              "rng_draws_per_s": floor, "synth_vs_hmmlearn": ours / hmm, "synth_vs_rng": ours / floor,
-              "synth_full_vs_rng": full / floor, "stream_samples": stream["samples"],
-              "stream_peak_rss_mib": stream["peak_rss_mib"], "quick": args.quick}
-    print(f"sampler (levels, AR, loss)     {ours:14,.0f} samples/s")
-    print(f"  with cross traffic, queue, handovers {full:14,.0f} samples/s")
-    print(f"hmmlearn GaussianHMM.sample    {hmm:14,.0f} samples/s   ratio {ours / hmm:8.1f}x (target >= 100)")
-    print(f"numpy standard_normal          {floor:14,.0f} draws/s     ratio {ours / floor:8.3f} (target >= 0.25),"
-          f" full {full / floor:.3f} (target >= 0.1)")
-    print(f"stream to Parquet              {stream['samples']:14,d} samples, peak RSS {stream['peak_rss_mib']:.0f} MiB")
-    print(json.dumps(result))
+    head = sampler[HEADLINE_STEP_S]
+    at_h = sampler[h]
+    result = {
+        "model": Path(args.model).name, "model_step_s": h, "samples_per_trace": n, "quick": args.quick,
+        "rng_draws_per_s": rng_rate, "hmmlearn_samples_per_s": hmm,
+        "sampler_samples_per_s": {f"{s:g}": v for s, v in sampler.items()},
+        "sampler_vs_rng": {f"{s:g}": v / rng_rate for s, v in sampler.items()},
+        "synth_one_samples_per_s": one, "synth_one_full_samples_per_s": full,
+        "synth_vs_rng": head / rng_rate, "synth_vs_rng_step_s": HEADLINE_STEP_S,
+        "synth_vs_hmmlearn": at_h / hmm, "synth_vs_hmmlearn_step_s": h,
+        "synth_vs_hmmlearn_at_10ms": head / hmm,
+        "synth_one_vs_rng": one / rng_rate, "synth_full_vs_rng": full / rng_rate,
+        "stream_samples": stream["samples"], "stream_seconds": stream["seconds"],
+        "stream_peak_rss_mib": stream["peak_rss_mib"],
+    }
+    if full_error:
+        result["synth_full_error"] = full_error
+    if "error" in stream:
+        result["stream_error"] = stream["error"]
+
+    print(f"model {Path(args.model).name} (step {h:g} s), {n:,} samples per trace, best of {repeat}")
+    print(f"numpy standard_normal (floor)          {rng_rate:14,.0f} draws/s")
+    for s, v in sampler.items():
+        tag = "  <- headline synth_vs_rng" if s == HEADLINE_STEP_S else (
+            "  <- headline synth_vs_hmmlearn" if s == h else "")
+        print(f"sampler at {s:>5g} s                    {v:14,.0f} samples/s  {v / rng_rate:6.3f} x floor"
+              f"  {v / hmm:8.0f} x hmmlearn{tag}")
+    print(f"hmmlearn GaussianHMM.sample ({model.n_states} states) {hmm:14,.0f} samples/s")
+    print(f"synth_one at 10 ms (Trace + id)        {one:14,.0f} samples/s  {one / rng_rate:6.3f} x floor")
+    print(f"  + cross traffic, CoDel, handovers    {full:14,.0f} samples/s  {full / rng_rate:6.3f} x floor"
+          + (f"  ({full_error})" if full_error else ""))
+    print(f"stream to Parquet                      {stream['samples']:14,d} samples in {stream['seconds']:.0f} s,"
+          f" peak RSS {stream['peak_rss_mib']:.0f} MiB" + (f"  ({stream['error']})" if "error" in stream else ""))
+    print(f"targets: synth_vs_rng (10 ms) >= 0.25: {head / rng_rate:.3f}; synth_vs_hmmlearn (model step) >= 100: "
+          f"{at_h / hmm:.0f}; synth_full_vs_rng >= 0.1: {full / rng_rate:.3f}")
+    print(json.dumps({k: (None if isinstance(v, float) and v != v else v) for k, v in result.items()}))
 
 
 if __name__ == "__main__":
