@@ -40,9 +40,19 @@ def trace_rng(seed: int, index: int, part: int) -> np.random.Generator:
     return np.random.default_rng(np.random.SeedSequence(int(seed), spawn_key=(int(index), int(part))))
 
 
+_LAST_DIGEST: tuple[Any, str] | None = None
+
+
 def model_digest(model: Any) -> str:
-    """sha256 of the model's canonical JSON: names the model in provenance."""
-    return hashlib.sha256(model.to_json().encode()).hexdigest()
+    """sha256 of the model's canonical JSON: names the model in provenance (the last one is remembered,
+    holding the model so the identity check is safe)."""
+    global _LAST_DIGEST
+    last = _LAST_DIGEST
+    if last is not None and last[0] is model:
+        return last[1]
+    digest = hashlib.sha256(model.to_json().encode()).hexdigest()
+    _LAST_DIGEST = (model, digest)
+    return digest
 
 
 def _load(model: Any) -> tuple[Any, str | None]:
