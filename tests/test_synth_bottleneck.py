@@ -10,7 +10,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from tracegen.errors import TracegenError
-from tracegen.synth.bottleneck import MAX_QUEUE_MS, Bottleneck, _queue, _reflect, lindley_waits, queue
+from tracegen.synth.bottleneck import (MAX_QUEUE_MS, Bottleneck, _queue, _reflect, _standing, _track,
+                                       hold_level_bytes, lindley_waits, queue, standing_queue)
 
 
 def lindley_loop(service, gaps):
@@ -39,6 +40,33 @@ def test_lindley_reproduces_mm1_mean_wait():
     w = lindley_waits(rng.exponential(1 / mu, n), rng.exponential(1 / lam, n))
     expected = (lam / mu) / (mu - lam)
     assert w[20_000:].mean() == pytest.approx(expected, rel=0.05)
+
+
+def fluid_poisson_queue(sizes: str, seed: int, rho: float = 0.7, horizon: float = 300_000.0, dt: float = 0.1):
+    """Mean backlog of the fluid drop-tail queue fed by Poisson arrivals (rate rho) of mean-1 byte jobs on a
+    1 byte/s link with a huge buffer: each step carries the bytes of the jobs that arrived in it."""
+    rng = np.random.default_rng(seed)
+    n = int(horizon / dt)
+    m = rng.poisson(rho * horizon)
+    t = rng.uniform(0.0, horizon, m)
+    s = rng.exponential(1.0, m) if sizes == "exp" else np.ones(m)
+    work = np.bincount((t // dt).astype(np.int64), weights=s, minlength=n)[:n]
+    r = queue(np.full(n, 8.0), work * 8.0 / dt, dt, Bottleneck(buffer_bytes=1e9))
+    return float(r.backlog_bytes[n // 50:].mean())
+
+
+def test_fluid_queue_fed_by_poisson_jobs_reproduces_mm1():
+    # The fluid queue itself, not only the packet recursion: its backlog is the workload, whose time
+    # average equals the mean wait in queue (PASTA, Wolff 1982). M/M/1 (Kleinrock 1975, sec. 3.2):
+    # W_q = rho/(mu - lambda) = 0.7/0.3 at rho = 0.7, mu = 1. The 10 ms-of-a-second grid puts jobs at their
+    # step's start and samples at its end, a bias of order rho x dt/2 (1.5 %); sampling error ~1 %.
+    assert fluid_poisson_queue("exp", 0) == pytest.approx(0.7 / 0.3, rel=0.05)
+
+
+def test_fluid_queue_fed_by_poisson_jobs_reproduces_md1():
+    # M/D/1, Pollaczek-Khinchine (Kleinrock 1975, sec. 5.6): W_q = rho/(2 mu (1 - rho)) = 7/6 at rho = 0.7.
+    # Same grid bias (3 % of this smaller wait, low), so 6 %.
+    assert fluid_poisson_queue("det", 1) == pytest.approx(0.7 / 0.6, rel=0.06)
 
 
 def test_lindley_matches_the_plain_loop():
@@ -228,11 +256,151 @@ def test_queue_is_deterministic_and_ignores_rng():
     assert a.queue_ms.tobytes() == b.queue_ms.tobytes()
 
 
+# --- the responsive standing queue ------------------------------------------------------------------------------
+
+def track_loop(level, up, down, b0=0.0):
+    """b_{k+1} = median(b_k - down_k, level_k, b_k + up_k) step by step."""
+    b, out = b0, []
+    for lv, u, d in zip(level, up, down):
+        b = min(max(lv, b - d), b + u)
+        out.append(b)
+    return np.array(out)
+
+
+@settings(max_examples=80, deadline=None)
+@given(st.lists(st.tuples(st.sampled_from([0.0, 0.0, 5e3, 2e4, 6e4]), st.floats(0, 3e4), st.floats(0, 3e4)),
+                min_size=1, max_size=400), st.floats(0, 6e4))
+def test_tracker_matches_the_step_loop(rows, b0):
+    # levels that hold for a while and jump (as flows come and go), any climb and fall rates
+    level, up, down = (np.repeat(np.array(v), 7) for v in zip(*rows))
+    ref = track_loop(level.tolist(), up.tolist(), down.tolist(), b0)
+    np.testing.assert_allclose(_track(level, up, down, b0), ref, rtol=0, atol=1e-9 * max(1.0, np.abs(ref).max()))
+
+
+def test_tracker_follows_a_smoothly_moving_level():
+    # a level that drifts by less than the rates a step is tracked exactly once reached (no jumps inside)
+    rng = np.random.default_rng(3)
+    level = 1e4 + np.cumsum(rng.uniform(-100, 100, 20_000))
+    up, down = np.full(level.size, 150.0), np.full(level.size, 150.0)
+    got = _track(level, up, down, 0.0)
+    np.testing.assert_allclose(got, track_loop(level.tolist(), up.tolist(), down.tolist()), rtol=0, atol=1e-6)
+    reached = int(np.argmax(got == level))
+    assert 0 < reached < 200 and np.all(got[reached:] == level[reached:])
+
+
+def random_link(rng, n):
+    c = rng.uniform(5e6, 15e6, n) * (rng.random(n) > 0.01)
+    busy = np.repeat(rng.random(n // 50 + 1) < 0.6, 50)[:n]
+    unresp = np.repeat(rng.uniform(0, 1.4, n // 200 + 1), 200)[:n] * c
+    over = np.maximum(unresp - c, 0.0)
+    share = c - np.minimum(unresp, c)
+    resp = np.minimum(np.where(busy, c * rng.uniform(0.2, 0.8, n), 0.0), share)
+    loss = np.where(resp > 0, rng.uniform(0, 0.05, n), 0.0)
+    return c, resp, share, loss, over
+
+
+def standing_loop(c, resp, share, loss, over, step, top, level, probe, backoff):
+    """Drop-tail with responsive traffic, as the module docstring states it, one step at a time."""
+    b, out = 0.0, []
+    per = step / 8
+    for k in range(c.size):
+        hot = over[k] > 0
+        y = b + over[k] * per
+        if not hot:
+            lv = level[k] if resp[k] > 0 else 0.0
+            y = min(max(lv, y - backoff * share[k] * per), y + probe * resp[k] * per)
+        b = min(max(y, 0.0), top)
+        out.append(b)
+    return np.array(out)
+
+
+def test_standing_drop_tail_matches_the_plain_loop():
+    rng = np.random.default_rng(21)
+    c, resp, share, loss, over = random_link(rng, 30_000)
+    bn = Bottleneck(buffer_ms=120.0)
+    q = standing_queue(c, 0.01, bn, responsive_bps=resp, share_bps=share, overload_bps=over, hold_loss=loss, probe=0.7)
+    top = q.buffer_bytes
+    ref = standing_loop(c, resp, share, loss, over, 0.01, top, np.full(c.size, top), 0.7, 0.5)
+    np.testing.assert_allclose(q.backlog_bytes, ref, rtol=0, atol=1e-9 * top)
+    assert (over > 0).any() and (q.backlog_bytes == top).any() and q.dropped_bytes.sum() > 0
+
+
+@pytest.mark.parametrize("policy", ["drop-tail", "red", "codel"])
+def test_standing_vectorised_path_equals_the_step_loop(policy):
+    # same recursion two ways: the per-step loop everywhere vs. the tracker between overloaded stretches
+    rng = np.random.default_rng({"drop-tail": 1, "red": 2, "codel": 3}[policy])
+    for _ in range(4):
+        n = int(rng.integers(100, 30_000))
+        c, resp, share, loss, over = random_link(rng, n)
+        bn = Bottleneck(buffer_ms=float(rng.uniform(20, 200)), policy=policy, red_weight=0.02)
+        probe = float(rng.choice([0.05, 1.0, 3.0]))
+        fast = _standing(c, 0.01, bn, resp, share, loss, over, probe)
+        slow = _standing(c, 0.01, bn, resp, share, loss, over, probe, force_loop=True)
+        np.testing.assert_allclose(fast.backlog_bytes, slow.backlog_bytes, rtol=0, atol=1e-9 * fast.buffer_bytes)
+        np.testing.assert_allclose(fast.dropped_bytes, slow.dropped_bytes, rtol=0, atol=1e-9 * fast.buffer_bytes)
+        np.testing.assert_array_equal(fast.hold, slow.hold)
+        np.testing.assert_allclose(fast.drop_share, slow.drop_share, rtol=0, atol=1e-9)
+        if policy != "drop-tail" and (over > 0).any():
+            assert slow.dropped_bytes.sum() > 0
+
+
+@pytest.mark.parametrize("policy", ["drop-tail", "red", "codel"])
+def test_standing_queue_conserves_bytes(policy):
+    rng = np.random.default_rng(8)
+    c, resp, share, loss, over = random_link(rng, 40_000)
+    q = standing_queue(c, 0.01, Bottleneck(buffer_ms=80.0, policy=policy), responsive_bps=resp, share_bps=share,
+                       overload_bps=over, hold_loss=loss, probe=1.0)
+    b_start = np.concatenate([[0.0], q.backlog_bytes[:-1]])
+    np.testing.assert_allclose(q.offered_bps * 0.01 / 8,
+                               q.delivered_bps * 0.01 / 8 + q.dropped_bytes + q.backlog_bytes - b_start,
+                               atol=1e-6 * q.buffer_bytes)
+    assert np.all(q.delivered_bps <= c + 1e-6) and q.backlog_bytes.max() <= q.buffer_bytes
+    assert np.all((q.drop_share >= 0) & (q.drop_share <= 1))
+    # on the level, the drop share is the responsive flows' loss (no overflow there; the AQM's drop law only
+    # acts while an overload's backlog drains)
+    calm = q.hold & (over == 0) & (q.dropped_bytes == 0)
+    assert calm.mean() > 0.2
+    np.testing.assert_allclose(q.drop_share[calm], loss[calm], rtol=1e-12)
+
+
+def test_hold_levels_follow_the_published_operating_points():
+    c = np.array([8e6, 16e6, 1e9])
+    loss = np.array([0.0, 0.01, 0.05])
+    top = 100_000.0
+    # drop-tail: the buffer; CoDel (Nichols & Jacobson 2012): target x capacity, at most the buffer
+    np.testing.assert_array_equal(hold_level_bytes(Bottleneck(buffer_bytes=top), c, loss, top), top)
+    np.testing.assert_allclose(hold_level_bytes(Bottleneck(buffer_bytes=top, policy="codel"), c, loss, top),
+                               [5_000, 10_000, top])
+    # RED (Floyd & Jacobson 1993): p_b = max_p (avg - min_th)/(max_th - min_th) solved for avg, max_th above max_p
+    red = Bottleneck(buffer_bytes=top, policy="red", red_max_p=0.02)
+    np.testing.assert_allclose(hold_level_bytes(red, c, loss, top), [25_000, 50_000, 75_000])
+
+
+def test_standing_queue_refuses_bad_inputs():
+    bn = Bottleneck(buffer_ms=10.0)
+    ok = dict(responsive_bps=np.ones(3), share_bps=np.ones(3), overload_bps=None, hold_loss=np.zeros(3), probe=1.0)
+    for key, value, field in (("responsive_bps", np.ones(4), "responsive_bps"),
+                              ("hold_loss", np.array([0.0, -1.0, 0.0]), "hold_loss"),
+                              ("share_bps", np.array([1.0, np.nan, 1.0]), "share_bps"),
+                              ("probe", -0.5, "probe"), ("probe", True, "probe"), ("backoff", 1.5, "backoff")):
+        with pytest.raises(TracegenError) as info:
+            standing_queue(np.ones(3), 0.01, bn, **{**ok, key: value})
+        assert info.value.field == field
+    with pytest.raises(TracegenError) as info:
+        standing_queue(np.ones(3), 0.01, "red", **ok)
+    assert info.value.field == "bottleneck"
+
+
 # --- validation ------------------------------------------------------------------------------------------------
 
 @pytest.mark.parametrize("kwargs, field, text", [
     (dict(buffer_bytes=0), "bottleneck.buffer_bytes", "got 0"),
     (dict(buffer_ms=-5.0), "bottleneck.buffer_ms", "got -5"),
+    (dict(buffer_ms=0), "bottleneck.buffer_ms", "got 0"),
+    (dict(buffer_ms=float("nan")), "bottleneck.buffer_ms", "nan"),
+    (dict(buffer_ms="100ms"), "bottleneck.buffer_ms", "'100ms'"),
+    (dict(buffer_ms=True), "bottleneck.buffer_ms", "True"),
+    (dict(buffer_ms=10.0, codel_interval_ms=-1.0), "bottleneck.codel_interval_ms", "-1"),
     (dict(), "bottleneck", "exactly one"),
     (dict(buffer_ms=10.0, buffer_bytes=1e5), "bottleneck", "exactly one"),
     (dict(buffer_ms=10.0, red_min_th_frac=0.8, red_max_th_frac=0.5), "bottleneck.red_min_th_frac", "0.8 >= 0.5"),
@@ -262,6 +430,9 @@ def test_unknown_policy_suggests_the_close_name():
     assert "did you mean 'drop-tail'?" in str(info.value)
     with pytest.raises(TracegenError, match="use one of: drop-tail, red, codel"):
         Bottleneck(buffer_ms=10.0, policy="fifo")
+    for typed, meant in (("CoDel", "codel"), ("RED", "red"), ("drop_tail", "drop-tail")):
+        with pytest.raises(TracegenError, match=f"did you mean '{meant}'"):
+            Bottleneck(buffer_ms=10.0, policy=typed)
 
 
 def test_queue_refuses_mismatched_or_negative_inputs():

@@ -2,13 +2,16 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 from scipy import stats
 
 from tracegen.errors import TracegenError
-from tracegen.synth.crosstraffic import (CrossTraffic, fair_share, generate, hurst_aggregated_variance,
-                                         pareto_samples, poisson_arrivals_s, superposed_onoff)
+from tracegen.synth.crosstraffic import (CrossTraffic, _bin_step_function, _StepFn, fair_share, generate,
+                                         hurst_aggregated_variance, pareto_samples, poisson_arrivals_s,
+                                         superposed_onoff)
 
 
 def fgn(n: int, hurst: float, rng: np.random.Generator) -> np.ndarray:
@@ -23,12 +26,27 @@ def fgn(n: int, hurst: float, rng: np.random.Generator) -> np.ndarray:
 
 # --- Hurst exponent ------------------------------------------------------------------------------------
 
-def test_superposed_pareto_onoff_is_long_range_dependent():
-    # Taqqu, Willinger & Sherman 1997: many Pareto on/off sources with tail index alpha aggregate to
-    # H = (3 - alpha)/2 (0.8 for alpha = 1.4); estimated by the aggregated-variance method.
-    x = superposed_onoff(50, 1.0, 1.0, 1.4, 1.0, 2.0**16, 1.0, np.random.default_rng(7))
+@pytest.mark.parametrize("alpha, seed", [(1.4, 7), (1.4, 8), (1.2, 7), (1.6, 7)])
+def test_superposed_pareto_onoff_is_long_range_dependent(alpha, seed):
+    # Taqqu, Willinger & Sherman 1997: many Pareto on/off sources with tail index 1 < alpha < 2 aggregate to
+    # H = (3 - alpha)/2 (0.9, 0.8, 0.7 here); estimated by the aggregated-variance method.
+    x = superposed_onoff(50, 1.0, 1.0, alpha, 1.0, 2.0**16, 1.0, np.random.default_rng(seed))
     assert x.shape == (2**16,)
-    assert abs(hurst_aggregated_variance(x) - 0.8) < 0.1
+    assert abs(hurst_aggregated_variance(x) - (3 - alpha) / 2) < 0.1
+
+
+def test_light_tailed_onoff_is_short_range_dependent():
+    # Same theorem, alpha > 2 (finite variance periods): the aggregate is short-range dependent, H = 1/2.
+    # Together with the test above this separates the two regimes (0.5 vs 0.8 for alpha 1.4).
+    x = superposed_onoff(50, 1.0, 1.0, 3.0, 1.0, 2.0**16, 1.0, np.random.default_rng(7))
+    assert abs(hurst_aggregated_variance(x) - 0.5) < 0.1
+
+
+def test_cross_traffic_onoff_load_is_long_range_dependent():
+    # the on/off sources as generate() uses them (their load is the unresponsive demand)
+    ct = CrossTraffic(onoff_sources=50, on_mean_s=1.0, off_mean_s=1.0, onoff_alpha=1.4, onoff_rate_bps=1e5)
+    r = generate(ct, np.full(2**16, 1e9), 1.0, np.random.default_rng(7))
+    assert abs(hurst_aggregated_variance(r.unresponsive_bps) - 0.8) < 0.1
 
 
 def test_iid_noise_has_hurst_one_half():
@@ -191,7 +209,84 @@ def test_generate_conserves_capacity_and_is_seeded():
     assert a.available_bps.tobytes() != c.available_bps.tobytes()
     np.testing.assert_allclose(a.cross_bps + a.available_bps, cap, rtol=1e-9)
     assert np.all(a.available_bps >= 0) and np.all(a.available_bps <= cap)
+    np.testing.assert_allclose(a.responsive_bps, a.cross_bps - np.minimum(a.unresponsive_bps, cap), atol=1e-6)
     assert np.all(a.n_active >= a.n_responsive - 1e-9)
+
+
+# --- processor sharing: an independent reference and a closed form -------------------------------------------------
+
+def ps_reference(arrive, size_bits, left, step):
+    """Processor sharing in time, event by event: n flows + the foreground share left_bps equally; returns
+    the per-step mean number of flows (exact integration of the count between events)."""
+    n_steps = len(left)
+    active = {}   # flow -> bits still to send
+    t, i, k, area = 0.0, 0, 0, np.zeros(n_steps)
+    arrive = list(arrive)
+    while k < n_steps:
+        rate = left[k] / (len(active) + 1)                 # per flow, until the step ends
+        t_step = (k + 1) * step
+        t_arr = arrive[i] if i < len(arrive) else math.inf
+        t_dep = t + min(active.values()) / rate if active and rate > 0 else math.inf
+        t_next = min(t_arr, t_dep, t_step)
+        area[k] += len(active) * (t_next - t)
+        for f in active:
+            active[f] -= rate * (t_next - t)
+        t = t_next
+        if t_dep <= t_arr and t_dep <= t_step:
+            del active[min(active, key=active.get)]
+        elif t_arr <= t_step:
+            active[i] = size_bits[i]
+            i += 1
+        else:
+            k += 1
+    return area / step
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_processor_sharing_matches_a_time_stepping_reference(seed):
+    rng = np.random.default_rng(seed)
+    n, step = int(rng.integers(20, 300)), float(rng.choice([0.1, 1.0]))
+    left = rng.uniform(1e5, 1e6, n) * (rng.random(n) < 0.85)      # with stretches where nothing is left
+    arrive = np.sort(rng.uniform(0, n * step, int(rng.integers(1, 40))))
+    size = rng.exponential(4e5 * step, arrive.size)
+    got = fair_share(left, step, arrive, size / 8.0).n_responsive
+    np.testing.assert_allclose(got, ps_reference(arrive, size, left, step), rtol=1e-7, atol=1e-7)
+
+
+@pytest.mark.parametrize("sizes, rho", [("exp", 0.5), ("exp", 0.7), ("pareto", 0.7)])
+def test_mean_number_of_flows_matches_the_birth_death_chain(sizes, rho):
+    # n flows + the foreground share C equally, so n flows finish at rate mu n/(n+1): a birth-death chain
+    # with pi_n = (1 - rho)^2 (n + 1) rho^n (hand-derived), mean 2 rho/(1 - rho). Processor sharing is a
+    # symmetric queue, so the mean holds for any size law (insensitivity, Kelly 1979, Reversibility and
+    # Stochastic Networks, ch. 3), here also Pareto with alpha 2.5. Sampling error below 1 % at this length.
+    rng = np.random.default_rng(3)
+    horizon, c, mean_bytes = 400_000.0, 8e6, 1e6          # mean service 1 s at the full rate
+    arrive = poisson_arrivals_s(rho * c / (8 * mean_bytes), horizon, rng)
+    size = rng.exponential(mean_bytes, arrive.size) if sizes == "exp" else \
+        pareto_samples(mean_bytes, 2.5, arrive.size, rng)
+    r = fair_share(np.full(int(horizon), c), 1.0, arrive, size)
+    assert r.n_responsive[20_000:].mean() == pytest.approx(2 * rho / (1 - rho), rel=0.03)
+    # work conservation: the foreground gets what the flows leave, C (1 - rho) on average
+    assert r.available_bps[20_000:].mean() == pytest.approx(c * (1 - rho), rel=0.03)
+
+
+def test_step_averages_are_exact_integrals_in_any_chunking():
+    # per-step averages of a step function = (integral over the step)/step, computed here from the
+    # cumulative integral at the step edges; producing them chunk by chunk gives the same bytes
+    rng = np.random.default_rng(2)
+    times = np.concatenate([[0.0], np.sort(rng.uniform(0, 500.0, 300))])
+    times[100:110] = np.round(times[100:110])        # some jumps exactly on step edges
+    times = np.sort(times)
+    values = rng.integers(0, 6, times.size).astype(float)
+    n, step = 1000, 0.5
+    got = _bin_step_function(times, values, n, step)
+    edges = np.arange(n + 1) * step
+    cum = np.concatenate([[0.0], np.cumsum(values[:-1] * np.diff(times))])
+    j = np.searchsorted(times, edges, side="right") - 1
+    np.testing.assert_allclose(got, np.diff(cum[j] + values[j] * (edges - times[j])) / step, rtol=1e-9, atol=1e-9)
+    fn = _StepFn(times, values, n, step)
+    pieces = np.concatenate([fn.mean(k, min(k + 137, n))[0] for k in range(0, n, 137)])
+    assert pieces.tobytes() == got.tobytes()
 
 
 # --- validation -----------------------------------------------------------------------------------------------
@@ -207,6 +302,12 @@ def test_generate_conserves_capacity_and_is_seeded():
     (dict(flow_rate_per_s=1.0, responsive_share=1.5), "cross_traffic.responsive_share", "1.5"),
     (dict(flow_rate_per_s=1.0, responsive_share=-0.1), "cross_traffic.responsive_share", "-0.1"),
     (dict(onoff_sources=2.5), "cross_traffic.onoff_sources", "2.5"),
+    (dict(flow_rate_per_s=1.0, responsive_probe=-0.5), "cross_traffic.responsive_probe", "-0.5"),
+    (dict(flow_rate_per_s=1.0, responsive_probe=float("inf")), "cross_traffic.responsive_probe", "inf"),
+    (dict(flow_rate_per_s=1.0, responsive_probe=True), "cross_traffic.responsive_probe", "True"),
+    (dict(flow_rate_per_s=1.0, responsive_rtt_ms=0.0), "cross_traffic.responsive_rtt_ms", "0"),
+    (dict(flow_rate_per_s="2/s"), "cross_traffic.flow_rate_per_s", "'2/s'"),
+    (dict(flow_rate_per_s=float("nan")), "cross_traffic.flow_rate_per_s", "nan"),
     (dict(), "cross_traffic", "0"),
 ])
 def test_validation_names_field_and_value(kwargs, field, numbers):

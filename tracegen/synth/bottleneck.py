@@ -9,6 +9,11 @@ RED and CoDel follow the same path while they are idle (RED's average below min_
 below target) and switch to a per-step loop while they act: their state (the averaged queue, the drop
 schedule) feeds back into the backlog step by step, so those stretches are sequential.
 ``lindley_waits`` is the packet-level recursion for an infinite buffer.
+
+``standing_queue`` (and ``run_standing``, fed chunk by chunk) adds loss-based responsive traffic that
+holds the queue at the bottleneck's operating point (the model is described in ``tracegen.synth.link``).
+Its backlog obeys b_{k+1} = median(b_k − down_k, level_k, b_k + up_k) (after any overload), solved
+exactly by ``_track``: closed forms between level jumps, a Python loop once per jump.
 """
 
 from __future__ import annotations
@@ -16,6 +21,7 @@ from __future__ import annotations
 import difflib
 import math
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 from scipy.signal import lfilter
@@ -32,6 +38,7 @@ _SHORT_RUN = 512         # ... this many steps directly
 _SNAP_REL = 1e-9         # backlogs below this share of the largest bytes per step count as empty
 _LINDLEY_BLOCK = 4096    # packets per block of lindley_waits (bounds rounding, see there)
 _CALM_STEPS = 64         # idle AQM steps in a row before the loop hands back to the vectorised path
+_CHUNK = 16384           # steps per vectorised chunk of the standing-queue model (small temporaries stay cached)
 
 
 def _number(name: str, value: object, low: float, high: float = math.inf, *, low_open: bool = False,
@@ -78,7 +85,7 @@ class Bottleneck:
         name = "buffer_bytes" if self.buffer_bytes is not None else "buffer_ms"
         _number(name, getattr(self, name), 0.0, low_open=True)
         if self.policy not in POLICIES:
-            close = difflib.get_close_matches(str(self.policy), POLICIES, n=1)
+            close = difflib.get_close_matches(str(self.policy).strip().lower(), POLICIES, n=1)
             hint = f"did you mean '{close[0]}'?" if close else f"use one of: {', '.join(POLICIES)}"
             raise TracegenError(f"unknown policy {self.policy!r}", field=f"{_SECTION}.policy", hint=hint)
         _number("red_min_th_frac", self.red_min_th_frac, 0.0, 1.0, high_open=True)
@@ -105,11 +112,16 @@ class QueueResult:
 
     queue_ms: np.ndarray         # backlog at the end of the step / the step's capacity
     drop_share: np.ndarray       # dropped bytes / offered bytes in the step (0 when nothing is offered)
-    delivered_bps: np.ndarray    # bytes that left the queue in the step, as a rate
-    backlog_bytes: np.ndarray    # backlog at the end of the step
-    dropped_bytes: np.ndarray    # AQM drops + overflow in the step
+    delivered_bps: np.ndarray | None  # bytes that left the queue in the step, as a rate
+    backlog_bytes: np.ndarray | None  # backlog at the end of the step
+    dropped_bytes: np.ndarray | None  # AQM drops + overflow in the step
     buffer_bytes: float
+    # (the three above are None only from run_standing without details)
     avg_queue_bytes: np.ndarray | None = None  # RED's averaged queue after the step's update (RED only)
+    offered_bps: np.ndarray | None = None      # load offered to the queue (standing_queue only: after the
+                                               # responsive senders' probe or back-off)
+    level_bytes: np.ndarray | None = None      # the responsive operating point per step (standing_queue only)
+    hold: np.ndarray | None = None             # the backlog ends the step on that level (standing_queue only)
 
 
 def lindley_waits(service_s: np.ndarray, interarrival_s: np.ndarray) -> np.ndarray:
@@ -376,4 +388,416 @@ def _queue(capacity_bps: np.ndarray, offered_bps: np.ndarray, step_s: float, bn:
                        backlog_bytes=b_end, dropped_bytes=dropped, buffer_bytes=top, avg_queue_bytes=avg)
 
 
-__all__ = ["Bottleneck", "QueueResult", "POLICIES", "MAX_QUEUE_MS", "lindley_waits", "queue"]
+# --- the responsive standing queue ---------------------------------------------------------------------------
+
+BACKOFF = 0.5  # multiplicative decrease of loss-based senders: halve (RFC 5681, ssthresh = FlightSize/2)
+
+
+def hold_level_bytes(bn: Bottleneck, capacity_bps: np.ndarray, loss: np.ndarray, buffer_bytes: float) -> np.ndarray:
+    """The backlog at which responsive flows settle on this bottleneck (its operating point), per step.
+
+    Drop-tail signals only when full: the buffer. CoDel keeps the sojourn time at its target: target x
+    capacity (at most the buffer). RED settles where its drop probability equals the loss rate the flows
+    need, ``loss`` (Floyd & Jacobson 1993: p_b = max_p (avg - min_th)/(max_th - min_th)), so avg = min_th +
+    (loss/max_p)(max_th - min_th); a loss above max_p puts it at max_th (where RED's p_b jumps to 1).
+    """
+    c = np.asarray(capacity_bps, dtype=float)
+    if bn.policy == "drop-tail":
+        return np.full(c.size, float(buffer_bytes))
+    if bn.policy == "codel":
+        return np.minimum(c * (bn.codel_target_ms / 8000.0), buffer_bytes)
+    lo, hi = bn.red_min_th_frac * buffer_bytes, bn.red_max_th_frac * buffer_bytes
+    loss = np.asarray(loss, dtype=float)
+    frac = loss * (1.0 / bn.red_max_p) if bn.red_max_p > 0 else (loss > 0).astype(float)
+    np.clip(frac, 0.0, 1.0, out=frac)
+    frac *= hi - lo
+    frac += lo
+    return frac
+
+
+def _track(level: np.ndarray, up: np.ndarray, down: np.ndarray, b0: float) -> np.ndarray:
+    """Backlog after each step of b_{k+1} = median(b_k - down_k, level_k, b_k + up_k) from b0, exact.
+
+    The backlog climbs by at most ``up`` towards the level, falls by at most ``down`` towards it, and sits
+    on it once there. Between "jumps" (steps where the level rises by more than ``up`` or falls by more
+    than ``down``) a backlog below the level is min(level_k, b_s + sum up) and one above it is
+    max(level_k, b_s - sum down): once on the level it follows it, because the level moves less than the
+    backlog may. So a Python loop runs once per jump (a few per flow), and the steps between are filled
+    by a handful of vectorised passes. Step 0 is always treated as a jump.
+    """
+    n = level.size
+    if n == 0:
+        return np.empty(0)
+    dl = np.empty(n)
+    dl[0] = 0.0
+    np.subtract(level[1:], level[:-1], out=dl[1:])
+    jump = (dl > up) | (dl < -down)
+    jump[0] = True
+    at = np.flatnonzero(jump)
+    acc_up = np.zeros(n + 1)
+    np.cumsum(up, out=acc_up[1:])
+    acc_down = np.zeros(n + 1)
+    np.cumsum(down, out=acc_down[1:])
+    nxt = np.append(at[1:], n)
+    lv, uv, dv = level[at].tolist(), up[at].tolist(), down[at].tolist()
+    a1, d1 = acc_up[at + 1].tolist(), acc_down[at + 1].tolist()
+    le, ae, de = level[nxt - 1].tolist(), acc_up[nxt].tolist(), acc_down[nxt].tolist()
+    gap = (nxt - at - 1).tolist()
+    b_jump = [0.0] * len(lv)
+    base = [0.0] * len(lv)
+    below = [True] * len(lv)
+    b = float(b0)
+    for i in range(len(lv)):
+        lo, L, hi = b - dv[i], lv[i], b + uv[i]
+        b = lo if L < lo else (hi if L > hi else L)
+        b_jump[i] = b
+        if gap[i]:
+            if b <= L:
+                base[i] = b - a1[i]
+                e = base[i] + ae[i]
+                b = le[i] if e > le[i] else e
+            else:
+                below[i] = False
+                base[i] = b + d1[i]
+                e = base[i] - de[i]
+                b = le[i] if e < le[i] else e
+    if at.size == n:
+        out = np.empty(n)
+    else:
+        seg = np.cumsum(jump, dtype=np.int32)
+        seg -= 1
+        bs = np.asarray(base)[seg]
+        climb = np.add(bs, acc_up[1:])
+        np.minimum(climb, level, out=climb)
+        if all(below):
+            out = climb
+        else:
+            np.subtract(bs, acc_down[1:], out=bs)
+            np.maximum(bs, level, out=bs)
+            out = np.where(np.asarray(below)[seg], climb, bs)
+    out[at] = b_jump
+    return out
+
+
+def _red_step_weight(bn: Bottleneck, c_bps: np.ndarray | float, step_s: float) -> float:
+    """RED's EWMA weight per step: 1 - (1 - w_q)^P, P packets per step at the mean capacity."""
+    packets = float(np.mean(c_bps)) * step_s / 8.0 / bn.packet_bytes
+    return float(-np.expm1(packets * np.log1p(-bn.red_weight))) if bn.red_weight < 1 else 1.0
+
+
+class LinkChunk(NamedTuple):
+    """Per-step inputs of the standing queue for one chunk of steps (arrays of the chunk's length)."""
+
+    capacity_bps: np.ndarray
+    responsive_bps: np.ndarray        # carried by the responsive cross flows
+    share_bps: np.ndarray             # the responsive traffic's share: responsive cross flows + foreground
+    hold_loss: np.ndarray             # loss the responsive flows need on the level
+    overload_bps: np.ndarray | None   # unresponsive load above the capacity (None: none in this chunk)
+
+
+class _Standing:
+    """The fluid queue with a responsive standing queue (``standing_queue``), chunk by chunk: the inputs of
+    each chunk come from ``provider(k, end)``; vectorised (``_track``) between overloaded steps, a per-step
+    loop while an AQM's drop law acts on overload. Chunks keep every temporary small."""
+
+    def __init__(self, bn: Bottleneck, n: int, step_s: float, top: float, mean_c: float, probe: float,
+                 backoff: float, provider, details: bool) -> None:
+        self.bn, self.n, self.step, self.top, self.probe, self.backoff = bn, n, step_s, top, probe, backoff
+        self.provider, self.details = provider, details
+        self.per = step_s / 8.0
+        self.stall_ms = top * 8000.0 / mean_c if mean_c > 0 else MAX_QUEUE_MS
+        self.red = bn.policy == "red"
+        self.codel = bn.policy == "codel"
+        self.queue_ms, self.drop_share = np.empty(n), np.empty(n)
+        names = ("backlog_bytes", "offered_bps", "delivered_bps", "dropped_bytes", "level_bytes")
+        self.out = {name: np.empty(n) for name in names} if details else {}
+        if details:
+            self.out["hold"] = np.empty(n, dtype=bool)
+            if self.red:
+                self.out["avg_queue_bytes"] = np.empty(n)
+        if self.red:
+            self.w = _red_step_weight(bn, mean_c, step_s)
+            self.min_th = bn.red_min_th_frac * top
+            self.max_th = bn.red_max_th_frac * top
+            self.loss_zi = [0.0]
+        self.avg_chunk = np.empty(_CHUNK) if self.red else None   # RED's averaged queue in the current chunk
+        self.avg = 0.0
+        self.target_s = bn.codel_target_ms / 1000.0
+        self.interval_s = bn.codel_interval_ms / 1000.0
+        self.first_above, self.dropping, self.count, self.drop_next = -1.0, False, 0, -math.inf
+        self.over, self.calm, self.looping = False, 0, False
+
+    def _params(self, ch: LinkChunk) -> tuple[np.ndarray | None, np.ndarray, np.ndarray, np.ndarray]:
+        """(x bytes or None, level, up, down) of a chunk; an overloaded step serves no responsive traffic."""
+        c = ch.capacity_bps
+        served = ch.responsive_bps > 0
+        x = ch.overload_bps * self.per if ch.overload_bps is not None else None
+        hot = None
+        if x is not None:
+            hot = x > 0
+            if hot.any():
+                served &= ~hot
+            else:
+                x, hot = None, None
+        if self.bn.policy == "drop-tail":
+            level = served * self.top
+        else:
+            loss = ch.hold_loss
+            if self.red:  # RED's averaged queue follows the loss the flows need through RED's own averaging
+                loss, self.loss_zi = lfilter([self.w], [1.0, -(1.0 - self.w)], loss, zi=self.loss_zi)
+            level = hold_level_bytes(self.bn, c, loss, self.top)
+            level *= served
+        up = ch.responsive_bps * (self.probe * self.per)
+        down = np.minimum(ch.share_bps, c)
+        down *= self.backoff * self.per
+        if hot is not None:
+            up[hot] = 0.0
+            down[hot] = 0.0
+        return x, level, up, down
+
+    def run(self, force_loop: bool = False) -> None:
+        n, b = self.n, 0.0
+        for k in range(0, n, _CHUNK):
+            end = min(k + _CHUNK, n)
+            ch = self.provider(k, end)
+            x, level, up, down = self._params(ch)
+            m = end - k
+            b_end, aqm = np.empty(m), np.zeros(m)
+            b0 = b
+            if self.bn.policy == "drop-tail" and not force_loop:
+                if x is None:
+                    path = _track(level, up, down, b)
+                else:  # an overloaded step is b -> min(buffer, b + x): level = buffer, up = x, down large
+                    hot = x > 0
+                    path = _track(np.where(hot, self.top, level), np.where(hot, x, up),
+                                  np.where(hot, self.top + x, down), b)
+                np.clip(path, 0.0, self.top, out=b_end)
+                b = float(b_end[-1])
+            else:
+                hot_at = np.flatnonzero(x > 0) if x is not None else np.zeros(0, dtype=np.int64)
+                i = 0
+                while i < m:
+                    if self.looping or force_loop:
+                        i, b = self._loop(k, i, m, b, x, level, up, down, ch.capacity_bps, b_end, aqm, force_loop)
+                        continue
+                    j = int(np.searchsorted(hot_at, i))
+                    h = int(hot_at[j]) if j < hot_at.size else m
+                    if h > i:
+                        b = self._fast(i, h, b, level, up, down, b_end)
+                    i = h
+                    if i < m:
+                        self.looping = True
+            self._post(k, end, ch, x, level, up, down, b_end, aqm, b0, force_loop)
+
+    def _fast(self, i: int, h: int, b: float, level: np.ndarray, up: np.ndarray, down: np.ndarray,
+              b_end: np.ndarray) -> float:
+        """Chunk steps i..h-1 hold no overload and no AQM drop law acts: the tracker alone."""
+        path = np.clip(_track(level[i:h], up[i:h], down[i:h], b), 0.0, self.top)
+        b_end[i:h] = path
+        if self.red:
+            b_start = np.empty(path.size)
+            b_start[0] = b
+            b_start[1:] = path[:-1]
+            avg, _ = lfilter([self.w], [1.0, -(1.0 - self.w)], b_start, zi=[(1.0 - self.w) * self.avg])
+            self.avg_chunk[i:h] = avg
+            self.avg = float(avg[-1])
+        else:
+            self.first_above, self.dropping = -1.0, False
+        self.calm += h - i
+        return float(path[-1])
+
+    def _loop(self, k: int, i0: int, m: int, b: float, xa, level, upa, downa, ca, b_end, aqm,
+              force_loop: bool) -> tuple[int, float]:
+        """Per step from chunk step i0 until the drop law has been off for _CALM_STEPS steps (or the chunk ends).
+
+        The drop law acts from an overloaded step until the backlog is back within a packet of the level.
+        """
+        top, step, pkt = self.top, self.step, self.bn.packet_bytes
+        over, calm = self.over, self.calm
+        red, codel = self.red, self.codel
+        cnt = m - i0
+        x = xa[i0:m].tolist() if xa is not None else [0.0] * cnt
+        c = ca[i0:m].tolist()
+        capb = (ca[i0:m] * self.per).tolist()
+        lv, up, dn = level[i0:m].tolist(), upa[i0:m].tolist(), downa[i0:m].tolist()
+        ends, drops, avgs = [0.0] * cnt, [0.0] * cnt, [0.0] * cnt
+        if red:
+            w, avg, lo, hi, max_p = self.w, self.avg, self.min_th, self.max_th, self.bn.red_max_p
+        elif codel:
+            target, interval = self.target_s, self.interval_s
+            first_above, dropping, count, drop_next = self.first_above, self.dropping, self.count, self.drop_next
+        done = cnt
+        for i in range(cnt):
+            if x[i] > 0.0:
+                over = True
+            elif over and b <= lv[i] + pkt:
+                over = False
+            calm = 0 if over else calm + 1
+            d = 0.0
+            if red:
+                avg = (1.0 - w) * avg + w * b
+                if over and avg >= lo:
+                    p = max_p * (avg - lo) / (hi - lo) if avg < hi else 1.0
+                    d = p * (capb[i] + x[i])
+                avgs[i] = avg
+            elif codel:
+                t0 = (k + i0 + i) * step
+                t1 = t0 + step
+                if not over or b < pkt or b * 8.0 < target * c[i]:
+                    first_above, dropping = -1.0, False
+                else:
+                    n_drop = 0
+                    if first_above < 0.0:
+                        first_above = t0 + interval
+                    ok_from = t0 if t0 > first_above else first_above
+                    if ok_from < t1:
+                        if not dropping:
+                            count = count - 2 if (count > 2 and ok_from - drop_next < interval) else 1
+                            dropping = True
+                            n_drop = 1
+                            drop_next = ok_from + interval / math.sqrt(count)
+                        while drop_next < t1:
+                            n_drop += 1
+                            count += 1
+                            drop_next += interval / math.sqrt(count)
+                    room = b + x[i]
+                    d = n_drop * pkt
+                    if d > room:
+                        d = room if room > 0.0 else 0.0
+            y = b + x[i] - d
+            lo_, L, hi_ = y - dn[i], lv[i], y + up[i]
+            y = lo_ if L < lo_ else (hi_ if L > hi_ else L)
+            b = top if y > top else (0.0 if y < 0.0 else y)
+            ends[i], drops[i] = b, d
+            if calm >= _CALM_STEPS and not force_loop:
+                done = i + 1
+                self.looping = False
+                break
+        if red:
+            self.avg = avg
+            self.avg_chunk[i0:i0 + done] = avgs[:done]
+        elif codel:
+            self.first_above, self.dropping, self.count, self.drop_next = first_above, dropping, count, drop_next
+        self.over, self.calm = over, calm
+        b_end[i0:i0 + done] = ends[:done]
+        aqm[i0:i0 + done] = drops[:done]
+        return i0 + done, b
+
+    def _post(self, k: int, end: int, ch: LinkChunk, x, level, up, down, b_end, aqm, b0: float,
+              force_loop: bool) -> None:
+        """The chunk's outputs from its backlog path."""
+        per, top, cc = self.per, self.top, ch.capacity_bps
+        bs = np.empty(end - k)
+        bs[0] = b0
+        bs[1:] = b_end[:-1]
+        hold = ch.responsive_bps > 0
+        hold &= b_end == level
+        hd = ch.hold_loss * hold
+        if x is None and not force_loop:
+            # no overload: no AQM drop law, no overflow, the link delivers its capacity
+            self.drop_share[k:end] = hd
+            if self.details:
+                self.out["offered_bps"][k:end] = (b_end - bs) / per + cc
+                self.out["dropped_bytes"][k:end] = 0.0
+                self.out["delivered_bps"][k:end] = cc
+        else:
+            xa = x if x is not None else np.zeros(end - k)
+            y = bs + xa - aqm
+            adjust = np.clip(level - y, -down, up)   # the responsive senders' probe (> 0) or back-off (< 0)
+            y += adjust
+            dropped = aqm + np.maximum(y - top, 0.0)
+            in_b = cc * per + xa + adjust
+            with np.errstate(divide="ignore", invalid="ignore"):
+                q = np.where(in_b > 0, dropped / in_b, 0.0)
+            np.clip(q, 0.0, 1.0, out=q)
+            self.drop_share[k:end] = np.where(q > 0, 1.0 - (1.0 - q) * (1.0 - hd), hd)
+            if self.details:
+                self.out["offered_bps"][k:end] = in_b / per
+                self.out["dropped_bytes"][k:end] = dropped
+                self.out["delivered_bps"][k:end] = np.clip(cc + np.minimum(y, 0.0) / per, 0.0, cc)
+        d = self.queue_ms[k:end]
+        pos = cc > 0
+        np.divide(b_end, cc, out=d, where=pos)
+        d *= 8000.0
+        if not pos.all():
+            stalled = ~pos
+            d[stalled] = np.where(b_end[stalled] > 0, self.stall_ms, 0.0)
+        if self.details:
+            self.out["backlog_bytes"][k:end] = b_end
+            self.out["level_bytes"][k:end] = level
+            self.out["hold"][k:end] = hold
+            if self.red:
+                self.out["avg_queue_bytes"][k:end] = self.avg_chunk[:end - k]
+
+    def result(self) -> QueueResult:
+        o = self.out
+        return QueueResult(queue_ms=self.queue_ms, drop_share=self.drop_share, buffer_bytes=self.top,
+                           delivered_bps=o.get("delivered_bps"), backlog_bytes=o.get("backlog_bytes"),
+                           dropped_bytes=o.get("dropped_bytes"), avg_queue_bytes=o.get("avg_queue_bytes"),
+                           offered_bps=o.get("offered_bps"), level_bytes=o.get("level_bytes"), hold=o.get("hold"))
+
+
+def run_standing(bn: Bottleneck, n: int, step_s: float, mean_capacity_bps: float, probe: float, provider, *,
+                 backoff: float = BACKOFF, details: bool = False, force_loop: bool = False) -> QueueResult:
+    """Run the standing-queue model on inputs delivered chunk by chunk: ``provider(k, end)`` returns the
+    LinkChunk of steps k..end-1 and is called once per chunk, in order. Without ``details`` only
+    ``queue_ms`` and ``drop_share`` are filled (the other per-step fields are None)."""
+    top = bn.buffer_bytes_for(np.array([mean_capacity_bps]))
+    engine = _Standing(bn, n, step_s, top, mean_capacity_bps, probe, backoff, provider, details)
+    engine.run(force_loop)
+    return engine.result()
+
+
+def standing_queue(capacity_bps: np.ndarray, step_s: float, bn: Bottleneck, *, responsive_bps: np.ndarray,
+                   share_bps: np.ndarray, overload_bps: np.ndarray | None, hold_loss: np.ndarray, probe: float,
+                   backoff: float = BACKOFF) -> QueueResult:
+    """The fluid queue with loss-based responsive traffic (the model is described in ``tracegen.synth.link``).
+
+    Per step, all in bytes: unresponsive load above the capacity (``overload_bps``; None: none) adds to
+    the backlog; then, while responsive cross flows are served (``responsive_bps`` > 0), the responsive
+    traffic moves the backlog towards the bottleneck's operating point (``hold_level_bytes``): up by at
+    most ``probe`` x their rate, down by at most ``backoff`` x the responsive traffic's share
+    (``share_bps``: the cross flows and the foreground). With no responsive cross flow served the level is
+    0, so a backlog drains at that back-off rate. An overloaded step serves no responsive traffic (nothing
+    probes or backs off). The buffer caps the backlog (overflow is dropped). RED's and CoDel's drop laws
+    act on the backlog overload builds (from an overloaded step until the backlog is back within a packet
+    of the level); on the level their action is the equilibrium loss ``hold_loss``, reported in
+    ``drop_share`` for steps that end there and made good by the responsive senders (it does not change
+    the backlog). RED's level follows ``hold_loss`` through RED's own per-step averaging weight, as its
+    averaged queue would. All per-step fields of the result are filled.
+    """
+    return _standing(capacity_bps, step_s, bn, responsive_bps, share_bps, hold_loss, overload_bps, probe, backoff)
+
+
+def _standing(capacity_bps, step_s, bn, responsive_bps, share_bps, hold_loss, overload_bps, probe,
+              backoff=BACKOFF, force_loop: bool = False) -> QueueResult:
+    if not isinstance(bn, Bottleneck):
+        raise TracegenError(f"must be a Bottleneck, got {type(bn).__name__}", field=_SECTION)
+    c, _ = _check_inputs(capacity_bps, capacity_bps, step_s)
+    arrays = []
+    for name, v in (("responsive_bps", responsive_bps), ("share_bps", share_bps), ("hold_loss", hold_loss),
+                    ("overload_bps", overload_bps)):
+        if v is None and name == "overload_bps":
+            arrays.append(None)
+            continue
+        a = np.asarray(v, dtype=float)
+        if a.shape != c.shape or not np.all(np.isfinite(a) & (a >= 0)):
+            raise TracegenError(f"must be finite, >= 0 and of the capacity's length {c.size}", field=name)
+        arrays.append(a)
+    for name, v in (("probe", probe), ("backoff", backoff)):
+        if isinstance(v, bool) or not (isinstance(v, (int, float)) and math.isfinite(v) and v >= 0):
+            raise TracegenError(f"must be finite and >= 0, got {v!r}", field=name)
+    if backoff > 1:
+        raise TracegenError(f"must be at most 1, got {backoff!r}", field="backoff")
+    resp, share, loss, over = arrays
+    loss = np.minimum(loss, 1.0)
+
+    def provider(k: int, end: int) -> LinkChunk:
+        return LinkChunk(c[k:end], resp[k:end], share[k:end], loss[k:end], over[k:end] if over is not None else None)
+
+    return run_standing(bn, c.size, float(step_s), float(np.mean(c)), float(probe), provider, backoff=float(backoff),
+                        details=True, force_loop=force_loop)
+
+
+__all__ = ["Bottleneck", "QueueResult", "POLICIES", "MAX_QUEUE_MS", "BACKOFF", "LinkChunk", "lindley_waits", "queue",
+           "standing_queue", "run_standing", "hold_level_bytes"]

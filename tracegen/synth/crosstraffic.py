@@ -6,9 +6,13 @@ the foreground (the trace's own flow): each gets ``left / (n_responsive + 1)`` (
 demand limits, i.e. processor sharing). Responsive flows are tracked exactly: all of them get the same
 rate, so one "attained service" clock serves every flow, and a flow leaves when that clock has advanced
 by its size. Who is active decides the share and the share decides who leaves, so this is an event
-loop over flows (two events a flow, ~0.25 M flows/s); flows are few relative to steps. Everything per
-step is vectorised. The system starts empty at t = 0 (no flows in progress); on/off sources start in
-their stationary state.
+loop over flows (two events a flow, plain float arithmetic on the cumulative left-over capacity);
+flows are few relative to steps. Everything per step is vectorised, and produced in chunks of CHUNK
+steps (``Flows.chunk``) so that long series need no full-length temporaries. The system starts empty at
+t = 0 (no flows in progress); on/off sources start in their stationary state.
+
+How the responsive flows load a bottleneck queue beyond their fair share (``responsive_probe``,
+``responsive_rtt_ms``) is modelled in ``tracegen.synth.link``.
 """
 
 from __future__ import annotations
@@ -22,6 +26,7 @@ import numpy as np
 from ..errors import TracegenError
 
 _SECTION = "cross_traffic"
+CHUNK = 16384  # steps per chunk when per-step series are produced piecewise (small temporaries stay cached)
 
 
 def _fail(name: str, message: str) -> TracegenError:
@@ -41,6 +46,11 @@ class CrossTraffic:
     ``responsive_share`` of flows is responsive (fair share of what is left), the rest send at
     ``unresponsive_rate_bps`` until their bytes are sent. On/off sources send ``onoff_rate_bps`` while on;
     on and off periods are Pareto with means ``on_mean_s``, ``off_mean_s`` and tail index ``onoff_alpha``.
+
+    At a bottleneck (``tracegen.synth.link``) responsive flows are loss-based: below the bottleneck's
+    operating point they offer ``responsive_probe`` times their share on top of it (1: slow start's
+    doubling; 0: they take exactly their share and never build a queue), and their loss there follows
+    the Reno response function at round-trip time ``responsive_rtt_ms``.
     """
 
     flow_rate_per_s: float = 0.0
@@ -53,6 +63,8 @@ class CrossTraffic:
     off_mean_s: float = 2.0
     onoff_rate_bps: float = 500_000.0
     onoff_alpha: float = 1.4
+    responsive_probe: float = 1.0
+    responsive_rtt_ms: float = 50.0
 
     def __post_init__(self) -> None:
         self.validate()
@@ -71,6 +83,10 @@ class CrossTraffic:
             a = getattr(self, name)
             if not (isinstance(a, (int, float)) and not isinstance(a, bool) and math.isfinite(a) and a > 1):
                 raise _fail(name, f"must be > 1 (the mean is infinite otherwise), got {a!r}")
+        e = self.responsive_probe
+        if not (isinstance(e, (int, float)) and not isinstance(e, bool) and math.isfinite(e) and e >= 0):
+            raise _fail("responsive_probe", f"must be >= 0 (0: responsive flows take exactly their share), got {e!r}")
+        _positive("responsive_rtt_ms", self.responsive_rtt_ms)
         s = self.responsive_share
         if not (isinstance(s, (int, float)) and not isinstance(s, bool) and 0.0 <= s <= 1.0):
             raise _fail("responsive_share", f"must be in [0, 1], got {s!r}")
@@ -89,6 +105,7 @@ class CrossResult:
     n_active: np.ndarray        # time-averaged number of active cross flows (responsive + unresponsive)
     n_responsive: np.ndarray    # time-averaged number of active responsive flows
     unresponsive_bps: np.ndarray  # unresponsive demand (flows + on/off sources), may exceed the capacity
+    responsive_bps: np.ndarray    # carried by the responsive flows (their fair share), cross_bps minus unresponsive
 
 
 # --- random building blocks -------------------------------------------------------------------------------
@@ -144,27 +161,55 @@ def _bin_intervals(start_s: np.ndarray, end_s: np.ndarray, weight: float, n_step
     return weight * _bin_jumps(e, d, n_steps, step_s)
 
 
-def _bin_step_function(times_s: np.ndarray, values: np.ndarray, n_steps: int, step_s: float) -> np.ndarray:
-    """Per-step time average of the function equal to values[i] on [times[i], times[i+1]) (times[0] = 0).
+class _StepFn:
+    """Per-step time averages of step functions equal to values[r][i] on [times[i], times[i+1]) (times[0] = 0),
+    for any range of steps (so long series can be produced chunk by chunk). ``values`` is one row per
+    function, all with the same jump times.
 
-    Steps without a jump take their segment's value (one np.repeat); steps holding a jump are integrated.
+    Steps without a jump take their segment's value; steps holding a jump are integrated.
     """
-    times = np.asarray(times_s, dtype=float)
-    values = np.asarray(values, dtype=float)
-    if times.size == 1:
-        return np.full(n_steps, values[0])
-    first = np.minimum(np.ceil(times / step_s).astype(np.int64), n_steps)
-    first[0] = 0
-    first = np.maximum.accumulate(first)
-    out = np.repeat(values, np.diff(np.append(first, n_steps)))
-    hold = np.unique(np.minimum(np.floor(times[1:] / step_s).astype(np.int64), n_steps))
-    hold = hold[hold < n_steps]
-    cum = np.concatenate([[0.0], np.cumsum(values[:-1] * np.diff(times))])
-    edges = np.concatenate([hold * step_s, (hold + 1) * step_s])
-    j = np.searchsorted(times, edges, side="right") - 1
-    f = cum[j] + values[j] * (edges - times[j])
-    out[hold] = (f[hold.size:] - f[:hold.size]) / step_s
-    return out
+
+    def __init__(self, times_s: np.ndarray, values: np.ndarray, n_steps: int, step_s: float) -> None:
+        self.times = np.asarray(times_s, dtype=float)
+        self.values = np.atleast_2d(np.asarray(values, dtype=float))
+        self.n, self.step = n_steps, step_s
+        if self.times.size > 1:
+            first = np.minimum(np.ceil(self.times / step_s).astype(np.int64), n_steps)
+            first[0] = 0
+            self.first = np.maximum.accumulate(first)
+            hold = np.unique(np.minimum(np.floor(self.times[1:] / step_s).astype(np.int64), n_steps))
+            self.hold = hold[hold < n_steps]
+            self.cum = np.concatenate([np.zeros((self.values.shape[0], 1)),
+                                       np.cumsum(self.values[:, :-1] * np.diff(self.times), axis=1)], axis=1)
+
+    def mean(self, k: int, end: int) -> list[np.ndarray]:
+        """Averages over steps k..end-1, one array per function."""
+        if self.times.size == 1:
+            return [np.full(end - k, v[0]) for v in self.values]
+        lo = int(np.searchsorted(self.first, k, side="right")) - 1
+        hi = int(np.searchsorted(self.first, end, side="left"))
+        bounds = np.clip(self.first[lo:hi], k, end)
+        lengths = np.diff(np.append(bounds, end))
+        if hi - lo == 1:
+            outs = [np.full(end - k, v[lo]) for v in self.values]
+        else:
+            idx = np.repeat(np.arange(lo, hi), lengths)
+            outs = [v[idx] for v in self.values]
+        h = self.hold[np.searchsorted(self.hold, k):np.searchsorted(self.hold, end)]
+        if h.size:
+            step = self.step
+            edges = np.concatenate([h * step, (h + 1) * step])
+            j = np.searchsorted(self.times, edges, side="right") - 1
+            dt = edges - self.times[j]
+            for out, v, cum in zip(outs, self.values, self.cum):
+                f = cum[j] + v[j] * dt
+                out[h - k] = (f[h.size:] - f[:h.size]) / step
+        return outs
+
+
+def _bin_step_function(times_s: np.ndarray, values: np.ndarray, n_steps: int, step_s: float) -> np.ndarray:
+    """Per-step time average of the function equal to values[i] on [times[i], times[i+1]) (times[0] = 0)."""
+    return _StepFn(times_s, values, n_steps, step_s).mean(0, n_steps)[0]
 
 
 # --- on/off sources ---------------------------------------------------------------------------------------
@@ -241,69 +286,83 @@ def superposed_onoff(n_sources: int, on_mean_s: float, off_mean_s: float, alpha:
 
 # --- responsive flows: processor sharing ------------------------------------------------------------------
 
+class _Served:
+    """S(t), the integral of a per-step rate from 0 to t (bits), from its cumulative sum at step boundaries."""
+
+    def __init__(self, rate_bps: np.ndarray, step_s: float) -> None:
+        self.rate, self.step, self.n = rate_bps, step_s, rate_bps.size
+        self.cum = np.empty(self.n + 1)
+        self.cum[0] = 0.0
+        np.cumsum(rate_bps, out=self.cum[1:])
+        self.cum *= step_s
+        self.end = float(self.cum[-1])
+
+    def at(self, t: np.ndarray) -> np.ndarray:
+        """S at times t (each clipped to the step it falls in)."""
+        k = np.minimum((t // self.step).astype(np.int64), self.n - 1)
+        return np.minimum(self.cum[k] + self.rate[k] * (t - k * self.step), self.cum[k + 1])
+
+    def time_of(self, a: np.ndarray) -> np.ndarray:
+        """The first time S reaches each a (a <= S(end))."""
+        idx = np.searchsorted(self.cum, a, side="left")
+        k = np.maximum(idx - 1, 0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            t = k * self.step + (a - self.cum[k]) / self.rate[k]
+        return np.where(idx == 0, 0.0, t)
+
+
 def _processor_sharing(arrive_s: np.ndarray, size_bits: np.ndarray, left_bps: np.ndarray,
-                       step_s: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                       step_s: float) -> tuple[np.ndarray, np.ndarray]:
     """Exact processor sharing of ``left_bps`` (piecewise constant per step) among the active flows and
-    the foreground. Returns (departure times, inf if still active at the end; event times; flow counts).
+    the foreground. Returns (event times, starting with 0; number of active flows from each event on).
 
     Loop over events (one arrival and one departure a flow): each flow's departure depends on how many
-    others are active meanwhile, which depends on their departures, so it is sequential.
+    others are active meanwhile, which depends on their departures, so it is sequential. The loop runs on
+    the "served" axis, the cumulative left-over capacity S(t) (bits): between events every active flow
+    and the foreground attain dS/(n+1), so the loop is plain float arithmetic; arrival times are mapped
+    onto the axis and departures back to time with one vectorised pass each. A departure that reaches its
+    size on a stretch where nothing is left (S flat) leaves at the start of that stretch.
     """
     n_steps = len(left_bps)
     total = n_steps * step_s
-    cum = np.concatenate([[0.0], np.cumsum(left_bps * step_s)])
-    rate = left_bps
-    end_cum = float(cum[-1])
-
-    def served_at(t: float) -> float:
-        k = int(t // step_s)
-        if k >= n_steps:
-            return end_cum
-        return float(cum[k] + rate[k] * (t - k * step_s))
-
-    def time_of(a: float) -> float:
-        if a > end_cum:
-            return math.inf
-        idx = int(np.searchsorted(cum, a, side="left"))
-        if idx == 0:
-            return 0.0
-        k = idx - 1
-        return k * step_s + float((a - cum[k]) / rate[k])
+    sv = _Served(np.asarray(left_bps, dtype=float), step_s)
+    end_cum = sv.end
+    s_arr = sv.at(arrive_s).tolist() if arrive_s.size else []
 
     arrive, size = arrive_s.tolist(), size_bits.tolist()
-    depart = [math.inf] * len(arrive)
-    heap: list[tuple[float, int]] = []
-    clock = 0.0      # attained service of every active flow since t = 0 (bits)
-    served = 0.0     # cumulative left-over capacity at time t (bits)
-    t, n, i = 0.0, 0, 0
-    times, counts = [0.0], [0]
     n_flows = len(arrive)
+    heap: list[tuple[float, int]] = []
+    push, pop = heapq.heappush, heapq.heappop
+    clock = 0.0      # attained service of every active flow (bits)
+    served = 0.0     # S at the last event
+    n, i = 0, 0
+    ev: list[float] = []      # arrival: its time (>= 0); departure: -1 - its S value
+    app = ev.append
+    inf = math.inf
     while True:
-        t_arr = arrive[i] if i < n_flows else math.inf
-        if heap:
-            target = served + (heap[0][0] - clock) * (n + 1)
-            t_dep = max(time_of(target), t)
-        else:
-            t_dep = math.inf
-        if t_arr == math.inf and t_dep == math.inf:
-            break
-        if t_arr <= t_dep:
-            s_new = served_at(t_arr)
-            clock += (s_new - served) / (n + 1)
-            served, t = s_new, t_arr
-            heapq.heappush(heap, (clock + size[i], i))
+        s_a = s_arr[i] if i < n_flows else inf
+        s_d = served + (heap[0][0] - clock) * (n + 1) if heap else inf
+        if s_a < s_d or (s_a == s_d and s_a != inf and arrive[i] <= float(sv.time_of(np.array([s_d]))[0])):
+            clock += (s_a - served) / (n + 1)
+            served = s_a
+            push(heap, (clock + size[i], i))
             n += 1
+            app(arrive[i])
             i += 1
         else:
-            if t_dep >= total:
+            if s_d >= end_cum:
                 break
-            finish, k = heapq.heappop(heap)
-            clock, served, t = finish, target, t_dep
-            depart[k] = t
+            clock = pop(heap)[0]
+            served = s_d
             n -= 1
-        times.append(t)
-        counts.append(n)
-    return np.asarray(depart), np.asarray(times), np.asarray(counts, dtype=float)
+            app(-1.0 - s_d)
+    times = np.asarray(ev, dtype=float)
+    is_dep = times < 0.0
+    if is_dep.any():
+        times[is_dep] = np.minimum(sv.time_of(-1.0 - times[is_dep]), total)
+        times = np.maximum.accumulate(times)  # rounding must not reorder events
+    counts = np.cumsum(np.where(is_dep, -1.0, 1.0))
+    return np.concatenate([[0.0], times]), np.concatenate([[0.0], counts])
 
 
 def _check_capacity(capacity_bps: np.ndarray, step_s: float) -> np.ndarray:
@@ -319,6 +378,51 @@ def _check_capacity(capacity_bps: np.ndarray, step_s: float) -> np.ndarray:
     return capacity
 
 
+class Flows:
+    """Responsive flows shared by processor sharing, ready to be binned chunk by chunk (``chunk``)."""
+
+    def __init__(self, capacity: np.ndarray, step_s: float, arrive_s: np.ndarray, size_bits: np.ndarray,
+                 unresponsive_bps: np.ndarray | None, n_unresponsive: np.ndarray | float) -> None:
+        self.capacity, self.step, self.n = capacity, step_s, capacity.size
+        self.unresp = unresponsive_bps
+        self.n_unresp = n_unresponsive
+        self.left = capacity if unresponsive_bps is None else capacity - np.minimum(unresponsive_bps, capacity)
+        times, counts = _processor_sharing(arrive_s, size_bits, self.left, step_s)
+        self.fns = _StepFn(times, np.stack([counts, 1.0 / (counts + 1.0)]), self.n, step_s)
+
+    def chunk(self, k: int, end: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
+        """(n_responsive, available_bps, responsive_bps, left_bps, unresponsive_bps or None) for steps k..end-1."""
+        left = self.left[k:end]
+        n_resp, available = self.fns.mean(k, end)
+        available *= left
+        responsive = left - available
+        unresp = self.unresp[k:end] if self.unresp is not None else None
+        return n_resp, available, responsive, left, unresp
+
+    def result(self) -> CrossResult:
+        """All steps as a CrossResult."""
+        n = self.n
+        out = {name: np.empty(n) for name in ("cross_bps", "available_bps", "offered_bps", "n_active",
+                                               "n_responsive", "responsive_bps")}
+        for k in range(0, n, CHUNK):
+            end = min(k + CHUNK, n)
+            n_resp, available, responsive, left, unresp = self.chunk(k, end)
+            out["available_bps"][k:end] = available
+            out["responsive_bps"][k:end] = responsive
+            out["n_responsive"][k:end] = n_resp
+            if unresp is None:
+                out["cross_bps"][k:end] = responsive
+                out["offered_bps"][k:end] = responsive
+                out["n_active"][k:end] = n_resp
+            else:
+                out["cross_bps"][k:end] = (self.capacity[k:end] - left) + responsive
+                out["offered_bps"][k:end] = responsive + unresp
+                n_u = self.n_unresp[k:end] if isinstance(self.n_unresp, np.ndarray) else self.n_unresp
+                out["n_active"][k:end] = n_resp + n_u
+        unresp = self.unresp if self.unresp is not None else np.zeros(n)
+        return CrossResult(unresponsive_bps=unresp, **out)
+
+
 def fair_share(capacity_bps: np.ndarray, step_s: float, arrive_s: np.ndarray, size_bytes: np.ndarray,
                unresponsive_bps: np.ndarray | float = 0.0, n_unresponsive: np.ndarray | float = 0.0) -> CrossResult:
     """Share the capacity among given responsive flows and the foreground, after the unresponsive load.
@@ -328,8 +432,11 @@ def fair_share(capacity_bps: np.ndarray, step_s: float, arrive_s: np.ndarray, si
     split the rest equally, exactly (processor sharing on the piecewise-constant left-over rate).
     ``n_unresponsive`` only feeds the ``n_active`` count.
     """
+    return _fair_flows(capacity_bps, step_s, arrive_s, size_bytes, unresponsive_bps, n_unresponsive).result()
+
+
+def _fair_flows(capacity_bps, step_s, arrive_s, size_bytes, unresponsive_bps=0.0, n_unresponsive=0.0) -> Flows:
     capacity = _check_capacity(capacity_bps, step_s)
-    n_steps = capacity.size
     arrive = np.asarray(arrive_s, dtype=float)
     size_bits = 8.0 * np.asarray(size_bytes, dtype=float)
     if arrive.shape != size_bits.shape or arrive.ndim != 1:
@@ -341,18 +448,13 @@ def fair_share(capacity_bps: np.ndarray, step_s: float, arrive_s: np.ndarray, si
         raise TracegenError(f"must be > 0, got {size_bits[size_bits <= 0][0] / 8}", field="size_bytes")
     unresp = np.asarray(unresponsive_bps, dtype=float)
     if unresp.ndim == 0 and unresp == 0:
-        unresp, carried_unresp, left = np.zeros(n_steps), np.zeros(n_steps), capacity
+        unresp = None
     else:
         unresp = np.array(np.broadcast_to(unresp, capacity.shape))
-        carried_unresp = np.minimum(unresp, capacity)
-        left = capacity - carried_unresp
-    _, times, counts = _processor_sharing(arrive, size_bits, left, step_s)
-    n_resp = _bin_step_function(times, counts, n_steps, step_s)
-    available = left * _bin_step_function(times, 1.0 / (counts + 1.0), n_steps, step_s)
-    responsive_bps = left - available
-    return CrossResult(cross_bps=carried_unresp + responsive_bps, available_bps=available,
-                       offered_bps=responsive_bps + unresp, n_active=n_resp + n_unresponsive, n_responsive=n_resp,
-                       unresponsive_bps=unresp)
+        bad = ~(np.isfinite(unresp) & (unresp >= 0))
+        if bad.any():
+            raise TracegenError(f"must be finite and >= 0, got {unresp[bad][0]}", field="unresponsive_bps")
+    return Flows(capacity, float(step_s), arrive, size_bits, unresp, n_unresponsive)
 
 
 def generate(ct: CrossTraffic, capacity_bps: np.ndarray, step_s: float, rng: np.random.Generator) -> CrossResult:
@@ -361,6 +463,11 @@ def generate(ct: CrossTraffic, capacity_bps: np.ndarray, step_s: float, rng: np.
     Draws, in this order: flow arrivals (Poisson), sizes (Pareto), which flows are responsive, on/off
     periods.
     """
+    return flows(ct, capacity_bps, step_s, rng).result()
+
+
+def flows(ct: CrossTraffic, capacity_bps: np.ndarray, step_s: float, rng: np.random.Generator) -> Flows:
+    """``generate`` before binning: the shared flows, to be binned chunk by chunk (``Flows.chunk``)."""
     if not isinstance(ct, CrossTraffic):
         raise TracegenError(f"must be a CrossTraffic, got {type(ct).__name__}", field=_SECTION)
     capacity = _check_capacity(capacity_bps, step_s)
@@ -369,15 +476,15 @@ def generate(ct: CrossTraffic, capacity_bps: np.ndarray, step_s: float, rng: np.
     arrive = poisson_arrivals_s(ct.flow_rate_per_s, total, rng) if ct.flow_rate_per_s > 0 else np.empty(0)
     sizes = pareto_samples(ct.size_bytes_mean, ct.pareto_alpha, arrive.size, rng)
     responsive = rng.random(arrive.size) < ct.responsive_share
-    onoff = _onoff_rate(int(ct.onoff_sources), ct.on_mean_s, ct.off_mean_s, ct.onoff_alpha, ct.onoff_rate_bps,
-                        n_steps, step_s, rng)
     u_start = arrive[~responsive]
     if u_start.size == 0 and ct.onoff_sources == 0:
-        return fair_share(capacity, step_s, arrive, sizes)
+        return Flows(capacity, float(step_s), arrive, 8.0 * sizes, None, 0.0)
+    onoff = _onoff_rate(int(ct.onoff_sources), ct.on_mean_s, ct.off_mean_s, ct.onoff_alpha, ct.onoff_rate_bps,
+                        n_steps, step_s, rng)
     u_end = u_start + 8.0 * sizes[~responsive] / ct.unresponsive_rate_bps
     n_unresp = _bin_intervals(u_start, u_end, 1.0, n_steps, step_s)
-    return fair_share(capacity, step_s, arrive[responsive], sizes[responsive],
-                      unresponsive_bps=ct.unresponsive_rate_bps * n_unresp + onoff, n_unresponsive=n_unresp)
+    return Flows(capacity, float(step_s), arrive[responsive], 8.0 * sizes[responsive],
+                 ct.unresponsive_rate_bps * n_unresp + onoff, n_unresp)
 
 
 def hurst_aggregated_variance(x: np.ndarray, block_sizes: np.ndarray | None = None) -> float:
@@ -411,5 +518,5 @@ def hurst_aggregated_variance(x: np.ndarray, block_sizes: np.ndarray | None = No
     return float(1.0 + beta / 2.0)
 
 
-__all__ = ["CrossTraffic", "CrossResult", "generate", "fair_share", "superposed_onoff", "hurst_aggregated_variance",
-           "pareto_samples", "poisson_arrivals_s"]
+__all__ = ["CrossTraffic", "CrossResult", "Flows", "generate", "flows", "fair_share", "superposed_onoff",
+           "hurst_aggregated_variance", "pareto_samples", "poisson_arrivals_s"]
