@@ -15,11 +15,12 @@ from scipy import stats
 from scipy.signal import lfilter, lfiltic
 from statsmodels.tsa.arima_process import arma_acf
 
+from builders import ar, dwell
+from builders import level_state as level
+from builders import model as build
 from tracegen import Trace, TracegenError
-from tracegen.fit.ar import ARFit
-from tracegen.fit.dwell import DwellFit, family_mean_s
 from tracegen.fit.loss import GilbertElliott
-from tracegen.model import PathModel, StateModel
+from tracegen.model import PathModel
 from tracegen.synth import sampler
 from tracegen.synth.events import HandoverPlan
 from tracegen.synth.sampler import MIN_STEP_S, sample_trace, sample_traces, trace_generator
@@ -27,31 +28,7 @@ from tracegen.synth.sampler import MIN_STEP_S, sample_trace, sample_traces, trac
 ALPHA = 1e-3  # significance of the goodness-of-fit tests (fixed seeds: each outcome is deterministic)
 
 
-# --------------------------------------------------------------------------------------------------
-# Small models with known parameters (invented for these tests)
-
-
-def dwell(family: str, **params: float) -> DwellFit:
-    return DwellFit(family, dict(params), 1.0, family_mean_s(family, params, 1.0), 10, -1.0)
-
-
-def ar(coefs, sigma2: float) -> ARFit:
-    return ARFit(len(coefs), tuple(float(c) for c in coefs), sigma2, 100, -1.0, 2.0, False)
-
-
-def level(level_bps, share, dw, *, sd=0.2, ar_fit=None, rtt=(math.log(40.0), 0.2), loss_mean=None, joint=None):
-    mean, cov = (math.log(level_bps),), ((sd * sd,),)
-    if joint is not None:  # (mean log RTT, cov(log bw, log RTT), var log RTT)
-        mean, cov, rtt = (math.log(level_bps), joint[0]), ((sd * sd, joint[1]), (joint[1], joint[2])), None
-    return StateModel("level", level_bps, share, dw, mean, cov, ar_fit, rtt, loss_mean)
-
-
-def build(states, jumps, *, loss=None, step_s=1.0) -> PathModel:
-    joint = any(len(s.mean) == 2 for s in states)
-    features = ("log_bandwidth_bps", "log_rtt_ms") if joint else ("log_bandwidth_bps",)
-    raw = PathModel(step_s, 10_000.0, features, tuple(states), tuple(tuple(map(float, r)) for r in jumps), loss,
-                    None, {})
-    return PathModel.from_dict(raw.to_dict())  # through the validating loader, as a model file would go
+# Small models with known parameters (invented for these tests) come from builders.py.
 
 
 # AR laws of the three states of MODEL: AR(1), AR(2), AR(3)
@@ -245,8 +222,8 @@ def test_joint_rtt_conditional_slope_is_recovered():
     # Conditional Gaussian: E[log RTT | log bw] = mean_rtt + cov01/cov00 (log bw - mean_bw), residual sd
     # sqrt(cov11 - cov01^2/cov00). Reference: least squares by scipy.stats.linregress within each state.
     joints = [(math.log(80.0), -0.01, 0.02), (math.log(40.0), 0.006, 0.01)]
-    m = build([level(2e6, 0.5, dwell("geometric", p=0.05), ar_fit=ar((0.6,), 0.02), joint=joints[0]),
-               level(8e6, 0.5, dwell("geometric", p=0.05), sd=0.15, joint=joints[1])], [[0, 1], [1, 0]])
+    m = build([level(2e6, 0.5, dwell("geometric", p=0.05), ar_fit=ar((0.6,), 0.02), rtt_joint=joints[0]),
+               level(8e6, 0.5, dwell("geometric", p=0.05), sd=0.15, rtt_joint=joints[1])], [[0, 1], [1, 0]])
     s = sample_trace(m, 100_000.0, 1.0, trace_generator(31, 0))
     for k, (mu, c01, c11) in enumerate(joints):
         sel = s.state == k
@@ -384,3 +361,47 @@ def test_bad_counts_and_seeds_name_the_field():
 def test_start_state_is_the_first_state():
     for k in range(3):
         assert sample_trace(MODEL, 30.0, 1.0, trace_generator(60, k), start_state=k).state[0] == k
+
+
+@pytest.mark.parametrize("family, params, mean_residual", [
+    # renewal theory: the equilibrium residual has density S(x)/E[X] and mean E[X^2] / (2 E[X]);
+    # lognormal: E[X^2]/(2E[X]) = exp(mu + 3 sigma^2 / 2) / 2; gamma: (shape + 1) scale / 2
+    ("lognormal", {"mu": math.log(10.0), "sigma": 0.8}, math.exp(math.log(10.0) + 1.5 * 0.64) / 2.0),
+    ("gamma", {"shape": 2.5, "scale_s": 6.0}, 3.5 * 6.0 / 2.0),
+])
+def test_residual_dwell_has_the_equilibrium_law(family, params, mean_residual):
+    from scipy.integrate import cumulative_trapezoid
+
+    fit = dwell(family, **params)
+    x = fit.sample_residual_s(np.random.default_rng(8), 20_000)
+    assert abs(x.mean() - mean_residual) < 4 * x.std() / math.sqrt(x.size)
+    ref = stats.lognorm(params["sigma"], scale=math.exp(params["mu"])) if family == "lognormal" else \
+        stats.gamma(params["shape"], scale=params["scale_s"])
+    grid = np.linspace(0.0, ref.ppf(1 - 1e-9), 200_001)
+    cdf = cumulative_trapezoid(ref.sf(grid), grid, initial=0.0) / ref.mean()  # F_e(x) = int_0^x S / E[X]
+    assert stats.kstest(x, lambda v: np.interp(v, grid, cdf)).pvalue > ALPHA
+
+
+def test_a_trace_starts_in_steady_state():
+    # stationarity: the state and the time to the next jump seen at t = 0 have the same law as at a
+    # later time t = 200 s (semi-Markov renewal argument: both are the equilibrium law)
+    shares = np.array([20.0 * math.exp(0.405), 30.0])  # time shares: mean dwells exp(mu + sigma^2/2), 2 x 15
+    shares /= shares.sum()
+    m = build([level(1e6, float(shares[0]), dwell("lognormal", mu=math.log(20.0), sigma=0.9)),
+               level(5e6, float(shares[1]), dwell("gamma", shape=2.0, scale_s=15.0))], [[0, 1], [1, 0]])
+    rng = np.random.default_rng(21)
+    first, later, s0, s_mid = [], [], [], []
+    for _ in range(1500):
+        s = sample_trace(m, 400.0, 1.0, rng)
+        jumps = np.flatnonzero(np.diff(s.state)) + 1
+        after = jumps[jumps > 200]
+        if not jumps.size or not after.size:
+            continue
+        first.append(jumps[0])
+        later.append(after[0] - 200)
+        s0.append(s.state[0])
+        s_mid.append(s.state[200])
+    assert stats.ks_2samp(first, later).pvalue > ALPHA  # scipy.stats two-sample KS
+    table = np.array([np.bincount(s0, minlength=2), np.bincount(s_mid, minlength=2)])
+    assert stats.chi2_contingency(table).pvalue > ALPHA
+    assert stats.binomtest(int(np.sum(np.array(s0) == 0)), len(s0), shares[0]).pvalue > ALPHA

@@ -246,6 +246,26 @@ class DwellFit:
             x = rng.gamma(self.params["shape"], self.params["scale_s"], size)
         return np.maximum(x, self.step_s)
 
+    def sample_residual_s(self, rng: np.random.Generator, size: int | tuple[int, ...] | None = None) -> np.ndarray:
+        """Draws of the time left in a dwell seen at a random moment (the equilibrium forward-recurrence
+        time, density S(x) / mean): R = U x D*, D* the length-biased dwell (density x f(x) / mean) and
+        U uniform. Length-biased laws in closed form: lognormal(mu + sigma^2, sigma), gamma(shape + 1,
+        scale); a geometric dwell is memoryless, so its residual is the same geometric."""
+        if self.family == "geometric":
+            return rng.geometric(self.params["p"], size) * self.step_s
+        if self.family == "lognormal":
+            biased = rng.lognormal(self.params["mu"] + self.params["sigma"] ** 2, self.params["sigma"], size)
+        else:
+            biased = rng.gamma(self.params["shape"] + 1.0, self.params["scale_s"], size)
+        return np.maximum(rng.random(size) * biased, np.finfo(float).tiny)
+
+    def log_sf_s(self, x_s: np.ndarray) -> np.ndarray:
+        """log P(X > x) of the continuous family at seconds ``x_s`` (geometric: P(K >= x / step_s))."""
+        x = np.asarray(x_s, dtype=np.float64)
+        if self.family == "geometric":
+            return special.xlog1py(np.maximum(np.round(x / self.step_s), 1.0) - 1.0, -self.params["p"])
+        return _frozen(self.family, self.params).logsf(x)
+
     def sample_steps(self, rng: np.random.Generator, size: int | tuple[int, ...] | None = None) -> np.ndarray:
         """Durations in whole steps, distributed exactly as ``logpmf`` (k = ceil(X / step_s), >= 1)."""
         x = self.sample_s(rng, size)

@@ -6,10 +6,11 @@ r = ceil(step / h); a coarser output sample then averages its r base samples for
 (bandwidth, loss) and takes the first one for the point columns (RTT, jitter, state), as the Trace
 schema reads rates and points. Any step >= ``MIN_STEP_S`` works, a multiple of h or not.
 
-1. State path (hidden semi-Markov). The first state is drawn from the state shares (or is
-   ``start_state``) with a fresh dwell (not the equilibrium residual, so the first segment is a little
-   shorter on average than under a stationary start); then dwell and next state from the ``model.jumps``
-   row, alternately. A dwell is a draw X of the state's family (``DwellFit.sample_s``) rounded up to
+1. State path (hidden semi-Markov). The trace starts in steady state: the first state is drawn from
+   the state shares (the share of time in each state) and its first dwell is the time left in a dwell
+   seen at a random moment (``DwellFit.sample_residual_s``, density S(x) / mean); with ``start_state``
+   the first state is given and its dwell is a fresh one. Then dwell and next state from the
+   ``model.jumps`` row, alternately. A dwell is a draw X of the state's family (``DwellFit.sample_s``) rounded up to
    whole steps of the fit, k = ceil(X / h) (``DwellFit.sample_steps``): the fit reads a dwell exactly
    so (dwell.py), so at the model step the runs of a state follow the fitted discretised law, and
    segments start on whole steps from the trace's start or from a switch. Dwells are drawn in bulk per
@@ -64,7 +65,7 @@ from scipy.signal import lfilter, lfiltic
 from ..errors import TracegenError
 from ..jitter import interarrival_jitter
 from .events import EventDraw, HandoverPlan, draw_events
-from .tilt import Tilt, TiltPlan, dwell_log_ratio
+from .tilt import Tilt, TiltPlan, dwell_log_ratio, residual_log_ratio
 
 MIN_STEP_S = 0.01
 STREAM_PART = 0  # spawn_key=(index, STREAM_PART): the sampler's stream in tracegen.synth.trace_rng
@@ -300,7 +301,8 @@ def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float,
     """
     llr = 0.0
     tp = plan.tilt
-    if start_state is None:
+    stationary = start_state is None
+    if stationary:
         first = int(np.searchsorted(plan.start_cum, rng.random(), side="right"))
         llr += float(tp.start_log_ratio[first])
     else:
@@ -338,6 +340,8 @@ def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float,
         for k in np.unique(st).tolist():  # dwells in bulk, per state
             idx = np.flatnonzero(st == k)
             x[idx] = tp.dwell_q[k].sample_s(rng, idx.size)
+        if stationary and fresh[0] and active[0] == 0:  # the trace's first dwell: a residual one
+            x[0] = float(tp.dwell_q[int(st[0])].sample_residual_s(rng))
         qs = quantum[st]
         d = np.maximum(_ceil(x / qs), 1.0) * qs
         prev = np.empty(total, dtype=np.int64)
@@ -368,10 +372,15 @@ def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float,
         x = np.concatenate(out_x)[order]
         jumped = prev >= 0
         llr += float(tp.jump_log_ratio[prev[jumped], states[jumped]].sum())
+        resid = np.zeros(states.size, dtype=bool)
+        resid[0] = stationary  # sorted by (piece, start): the trace's first segment comes first
         for k in np.flatnonzero(tp.dwell_scale != 1.0).tolist():
-            sel = states == k
+            sel = (states == k) & ~resid
+            c = float(tp.dwell_scale[k])
             if sel.any():
-                llr += float(dwell_log_ratio(model.states[k].dwell, float(tp.dwell_scale[k]), x[sel]).sum())
+                llr += float(dwell_log_ratio(model.states[k].dwell, c, x[sel]).sum())
+            if stationary and states[0] == k:
+                llr += float(residual_log_ratio(model.states[k].dwell, c, x[:1])[0])
     return starts, states, llr
 
 

@@ -148,6 +148,18 @@ def dwell_log_ratio(fit: DwellFit, scale: float, x_s: np.ndarray) -> np.ndarray:
     return np.where(clipped, mass, dens)
 
 
+def residual_log_ratio(fit: DwellFit, scale: float, x_s: np.ndarray) -> np.ndarray:
+    """log p(x)/q(x) of equilibrium residual dwells x (``DwellFit.sample_residual_s``) when q's time
+    scale is ``scale`` times p's: the residual density is S(x) / mean, so the ratio is
+    log(scale) + log S_p(x) - log S_p(x / scale) (geometric: the residual is the dwell law itself)."""
+    x = np.asarray(x_s, dtype=np.float64)
+    if scale == 1.0:
+        return np.zeros(x.shape)
+    if fit.family == "geometric":
+        return dwell_log_ratio(fit, scale, x)
+    return math.log(scale) + fit.log_sf_s(x) - fit.log_sf_s(x / scale)
+
+
 def poisson_log_ratio(count: int, rate_per_s: float, factor: float, duration_s: float) -> float:
     """log p/q of a Poisson count over ``duration_s`` at rate ``rate_per_s`` (p) vs rate * factor (q)."""
     if factor == 1.0 or rate_per_s <= 0:
@@ -255,5 +267,5 @@ class TiltPlan:
                    tilt.outage_length_factor)
 
 
-__all__ = ["Tilt", "TiltPlan", "normalised_weights", "lognormal_log_ratio", "effective_sample_size", "dwell_log_ratio",
+__all__ = ["Tilt", "TiltPlan", "normalised_weights", "lognormal_log_ratio", "residual_log_ratio", "effective_sample_size", "dwell_log_ratio",
            "poisson_log_ratio", "scaled_dwell", "tilted_choice"]
