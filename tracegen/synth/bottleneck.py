@@ -216,6 +216,29 @@ def _check_inputs(capacity_bps: np.ndarray, offered_bps: np.ndarray, step_s: flo
     return c, o
 
 
+def _codel_law(t0: float, t1: float, interval: float, first_above: float, dropping: bool, count: int,
+               drop_next: float) -> tuple[int, float, bool, int, float]:
+    """CoDel's control law (Nichols & Jacobson 2012) over a step [t0, t1) whose sojourn is above target:
+    (packets to drop, first_above, dropping, count, drop_next). Drops start one interval after the
+    sojourn first went above target, then come interval / sqrt(count) apart; a new dropping state
+    re-enters at count - 2 when the last one ended less than an interval ago."""
+    n_drop = 0
+    if first_above < 0.0:
+        first_above = t0 + interval
+    ok_from = t0 if t0 > first_above else first_above
+    if ok_from < t1:
+        if not dropping:
+            count = count - 2 if (count > 2 and ok_from - drop_next < interval) else 1
+            dropping = True
+            n_drop = 1
+            drop_next = ok_from + interval / math.sqrt(count)
+        while drop_next < t1:
+            n_drop += 1
+            count += 1
+            drop_next += interval / math.sqrt(count)
+    return n_drop, first_above, dropping, count, drop_next
+
+
 class _Aqm:
     """RED or CoDel on the grid: vectorised while idle, a per-step loop while acting."""
 
@@ -309,19 +332,8 @@ class _Aqm:
                         calm += 1
                     else:
                         calm = 0
-                        if first_above < 0.0:
-                            first_above = t0 + interval
-                        ok_from = t0 if t0 > first_above else first_above
-                        if ok_from < t1:
-                            if not dropping:
-                                count = count - 2 if (count > 2 and ok_from - drop_next < interval) else 1
-                                dropping = True
-                                n_drop = 1
-                                drop_next = ok_from + interval / math.sqrt(count)
-                            while drop_next < t1:
-                                n_drop += 1
-                                count += 1
-                                drop_next += interval / math.sqrt(count)
+                        n_drop, first_above, dropping, count, drop_next = _codel_law(
+                            t0, t1, interval, first_above, dropping, count, drop_next)
                     room = b + inb[i] - capb[i]
                     d = n_drop * pkt
                     if d > room:
@@ -646,20 +658,8 @@ class _Standing:
                 if not over or b < pkt or b * 8.0 < target * c[i]:
                     first_above, dropping = -1.0, False
                 else:
-                    n_drop = 0
-                    if first_above < 0.0:
-                        first_above = t0 + interval
-                    ok_from = t0 if t0 > first_above else first_above
-                    if ok_from < t1:
-                        if not dropping:
-                            count = count - 2 if (count > 2 and ok_from - drop_next < interval) else 1
-                            dropping = True
-                            n_drop = 1
-                            drop_next = ok_from + interval / math.sqrt(count)
-                        while drop_next < t1:
-                            n_drop += 1
-                            count += 1
-                            drop_next += interval / math.sqrt(count)
+                    n_drop, first_above, dropping, count, drop_next = _codel_law(
+                        t0, t1, interval, first_above, dropping, count, drop_next)
                     room = b + x[i]
                     d = n_drop * pkt
                     if d > room:

@@ -365,16 +365,17 @@ def _processor_sharing(arrive_s: np.ndarray, size_bits: np.ndarray, left_bps: np
     return np.concatenate([[0.0], times]), np.concatenate([[0.0], counts])
 
 
-def _check_capacity(capacity_bps: np.ndarray, step_s: float) -> np.ndarray:
+def check_capacity(capacity_bps: np.ndarray, step_s: float) -> np.ndarray:
+    """A capacity series (finite, >= 0, 1-D, non-empty) and its step (> 0), as float; else TracegenError."""
     capacity = np.asarray(capacity_bps, dtype=float)
     if capacity.ndim != 1 or capacity.size == 0:
         raise TracegenError(f"must be a non-empty 1-D array, got shape {capacity.shape}", field="capacity_bps")
     bad = ~(np.isfinite(capacity) & (capacity >= 0))
     if bad.any():
         raise TracegenError(f"must be finite and >= 0, got {capacity[bad][0]} at step {int(np.argmax(bad))}",
-                            field="capacity_bps")
-    if not (isinstance(step_s, (int, float)) and math.isfinite(step_s) and step_s > 0):
-        raise TracegenError(f"must be > 0, got {step_s}", field="step_s")
+                            field="capacity_bps", hint="unknown capacity (NaN) has to be filled before synthesis")
+    if isinstance(step_s, bool) or not (isinstance(step_s, (int, float)) and math.isfinite(step_s) and step_s > 0):
+        raise TracegenError(f"must be > 0, got {step_s!r}", field="step_s")
     return capacity
 
 
@@ -436,7 +437,7 @@ def fair_share(capacity_bps: np.ndarray, step_s: float, arrive_s: np.ndarray, si
 
 
 def _fair_flows(capacity_bps, step_s, arrive_s, size_bytes, unresponsive_bps=0.0, n_unresponsive=0.0) -> Flows:
-    capacity = _check_capacity(capacity_bps, step_s)
+    capacity = check_capacity(capacity_bps, step_s)
     arrive = np.asarray(arrive_s, dtype=float)
     size_bits = 8.0 * np.asarray(size_bytes, dtype=float)
     if arrive.shape != size_bits.shape or arrive.ndim != 1:
@@ -470,7 +471,7 @@ def flows(ct: CrossTraffic, capacity_bps: np.ndarray, step_s: float, rng: np.ran
     """``generate`` before binning: the shared flows, to be binned chunk by chunk (``Flows.chunk``)."""
     if not isinstance(ct, CrossTraffic):
         raise TracegenError(f"must be a CrossTraffic, got {type(ct).__name__}", field=_SECTION)
-    capacity = _check_capacity(capacity_bps, step_s)
+    capacity = check_capacity(capacity_bps, step_s)
     n_steps = capacity.size
     total = n_steps * step_s
     arrive = poisson_arrivals_s(ct.flow_rate_per_s, total, rng) if ct.flow_rate_per_s > 0 else np.empty(0)

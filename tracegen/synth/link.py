@@ -65,14 +65,13 @@ trip time (``responsive_rtt_ms`` is taken as given), and the split of a draining
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
 
 from ..errors import TracegenError
 from .bottleneck import Bottleneck, LinkChunk, QueueResult, queue, run_standing, standing_queue
-from .crosstraffic import CrossResult, CrossTraffic, flows
+from .crosstraffic import CrossResult, CrossTraffic, check_capacity, flows
 
 
 @dataclass(frozen=True)
@@ -104,19 +103,6 @@ def reno_loss(responsive_bps: np.ndarray, n_responsive: np.ndarray, rtt_ms: floa
     return np.minimum(q, 1.0, out=q)
 
 
-def _check(capacity_bps: np.ndarray, step_s: float) -> np.ndarray:
-    c = np.asarray(capacity_bps, dtype=float)
-    if c.ndim != 1 or c.size == 0:
-        raise TracegenError(f"must be a non-empty 1-D array, got shape {c.shape}", field="capacity_bps")
-    bad = ~(np.isfinite(c) & (c >= 0))
-    if bad.any():
-        raise TracegenError(f"must be finite and >= 0, got {c[bad][0]} at step {int(np.argmax(bad))}",
-                            field="capacity_bps", hint="unknown capacity (NaN) has to be filled before synthesis")
-    if isinstance(step_s, bool) or not (isinstance(step_s, (int, float)) and math.isfinite(step_s) and step_s > 0):
-        raise TracegenError(f"must be > 0, got {step_s!r}", field="step_s")
-    return c
-
-
 def share_link(capacity_bps: np.ndarray, step_s: float, cross: CrossTraffic | None, bottleneck: Bottleneck | None,
                rng_cross: np.random.Generator | None, rng_queue: np.random.Generator | None = None, *,
                details: bool = False) -> LinkResult:
@@ -127,7 +113,7 @@ def share_link(capacity_bps: np.ndarray, step_s: float, cross: CrossTraffic | No
     and generator states give the same bytes, with or without ``details`` (which adds the flow-level and
     queue diagnostics: CrossResult, QueueResult with backlog, level, offered and delivered load).
     """
-    c = _check(capacity_bps, step_s)
+    c = check_capacity(capacity_bps, step_s)
     step_s = float(step_s)
     if cross is not None and not isinstance(cross, CrossTraffic):
         raise TracegenError(f"must be a CrossTraffic or None, got {type(cross).__name__}", field="cross_traffic")
