@@ -296,3 +296,28 @@ def test_bad_parts_name_their_section():
     with pytest.raises(TracegenError) as info:
         share_link(cap, STEP, CrossTraffic(flow_rate_per_s=1.0), None, 42)
     assert info.value.field == "rng_cross"
+
+
+def test_the_flows_round_trip_includes_the_standing_queue():
+    from tracegen.synth.link import level_rtt_ms
+
+    c = np.array([12e6, 6e6, 0.0])
+    # drop-tail: 100 ms of buffer at the mean capacity (12 Mbit/s) is 150 000 B, i.e. 100 ms at 12 Mbit/s
+    # and 200 ms at 6 Mbit/s (hand computation); no capacity: the base RTT
+    np.testing.assert_allclose(level_rtt_ms(Bottleneck(buffer_ms=100.0), c, 12e6, 50.0), [150.0, 250.0, 50.0])
+    np.testing.assert_allclose(level_rtt_ms(Bottleneck(buffer_ms=100.0, policy="codel"), c, 12e6, 50.0), 55.0)
+    # RED: halfway between min_th (25 %) and max_th (75 %) of the buffer
+    np.testing.assert_allclose(level_rtt_ms(Bottleneck(buffer_ms=100.0, policy="red"), c, 12e6, 50.0),
+                               [100.0, 150.0, 50.0])
+
+
+def test_a_deeper_drop_tail_buffer_means_more_delay_and_less_loss():
+    # bufferbloat (common practice): loss-based flows fill whatever buffer there is, so a deep buffer
+    # trades loss for delay; by the Reno response function p ~ 1/RTT^2 at a given rate
+    rng = np.random.default_rng(4)
+    cap = np.repeat(rng.uniform(5e6, 20e6, 120), 100)
+    ct = CrossTraffic(flow_rate_per_s=0.3, size_bytes_mean=1e6)
+    shallow = share_link(cap, 0.1, ct, Bottleneck(buffer_ms=20.0), np.random.default_rng(1))
+    deep = share_link(cap, 0.1, ct, Bottleneck(buffer_ms=400.0), np.random.default_rng(1))
+    assert deep.queue_ms.mean() > 5 * shallow.queue_ms.mean()
+    assert deep.drop_share.mean() < 0.5 * shallow.drop_share.mean()

@@ -36,11 +36,12 @@ vectorised (``bottleneck._track``), with a Python loop once per level jump (a fe
 chunks of 16384 steps so that only the four outputs are full-length arrays.
 
 Loss on the level. A flow in congestion avoidance at window W packets sees loss p = 3/(2W²) (the Reno
-response function, Mathis, Semke, Mahdavi & Ott 1997: rate = MSS/RTT x sqrt(3/(2p)); used for CUBIC-like
-flows too). With W = (per-flow
-rate) x ``responsive_rtt_ms`` / ``bottleneck.packet_bytes``, per-flow rate = responsive share / number of
-active responsive flows, that p is the drop share of every packet at the bottleneck on steps that end on
-the level; the responsive senders make the drops good, so the backlog stays put. Overflow and AQM drops of
+response function, Mathis, Semke, Mahdavi & Ott 1997: rate = MSS/RTT x sqrt(3/(2p))). With W = (per-flow
+rate) x RTT / ``bottleneck.packet_bytes``, per-flow rate = responsive share / number of active responsive
+flows, and RTT = ``responsive_rtt_ms`` plus the delay of the standing queue at its level
+(``level_rtt_ms``: a deep drop-tail buffer means long round trips, large windows and little loss, as
+bufferbloat does), that p is the drop share of every packet at the bottleneck on steps that end on the
+level; the responsive senders make the drops good, so the backlog stays put. Overflow and AQM drops of
 overload add to it (independently).
 
 ``queue_ms`` is the backlog at the end of the step over the step's capacity; ``drop_share`` the share of the
@@ -59,7 +60,7 @@ defaults to 50 ms, a typical wide-area round trip (from memory); it only sets th
 
 Not modelled: the sawtooth around the level (the fluid holds the time average, which for few flows on a
 buffer below the bandwidth-delay product is below the buffer), the queue's own delay in the flows' round
-trip time (``responsive_rtt_ms`` is taken as given), and the split of a draining backlog between flows
+trip time beyond its level (the level's delay is in the loss formula, the climb to it is not), and the split of a draining backlog between flows
 (the flow-level shares are kept).
 """
 
@@ -87,7 +88,8 @@ class LinkResult:
     hold_loss: np.ndarray | None = None  # the responsive flows' Reno loss per step (``details=True``)
 
 
-def reno_loss(responsive_bps: np.ndarray, n_responsive: np.ndarray, rtt_ms: float, packet_bytes: float) -> np.ndarray:
+def reno_loss(responsive_bps: np.ndarray, n_responsive: np.ndarray, rtt_ms: float | np.ndarray,
+              packet_bytes: float) -> np.ndarray:
     """Loss share at which Reno-like flows sharing ``responsive_bps`` among ``n_responsive`` run at that rate.
 
     Mathis, Semke, Mahdavi & Ott 1997: rate = MSS/RTT x sqrt(3/(2p)), so p = 3/(2W²) with W = rate x RTT /
@@ -97,10 +99,26 @@ def reno_loss(responsive_bps: np.ndarray, n_responsive: np.ndarray, rtt_ms: floa
     n = np.asarray(n_responsive, dtype=float)
     # p = 1.5 (MSS n / (r RTT))^2: n/r is 0 where nothing is served
     q = np.divide(n, r, out=np.zeros(r.shape), where=r > 0)
-    q *= 8.0 * packet_bytes / (rtt_ms / 1000.0)
+    q *= 8.0 * packet_bytes / (np.asarray(rtt_ms, dtype=float) / 1000.0)
     np.multiply(q, q, out=q)
     q *= 1.5
     return np.minimum(q, 1.0, out=q)
+
+
+def level_rtt_ms(bottleneck: Bottleneck, capacity_bps: np.ndarray, mean_capacity_bps: float,
+                 base_rtt_ms: float) -> np.ndarray:
+    """The responsive flows' round trip on the queue's operating point: ``base_rtt_ms`` plus the standing
+    queue's delay (drop-tail: the buffer; CoDel: its target; RED: halfway between its thresholds, as
+    the point it settles at depends on the loss itself). A deep buffer thus means long round trips,
+    large windows and little loss, as bufferbloat does; a step without capacity gets the base RTT."""
+    c = np.asarray(capacity_bps, dtype=float)
+    if bottleneck.policy == "codel":
+        return np.full(c.shape, base_rtt_ms + bottleneck.codel_target_ms)
+    top = bottleneck.buffer_bytes_for(np.array([mean_capacity_bps]))
+    if bottleneck.policy == "red":
+        top *= 0.5 * (bottleneck.red_min_th_frac + bottleneck.red_max_th_frac)
+    delay = np.divide(top * 8000.0, c, out=np.zeros(c.shape), where=c > 0)
+    return base_rtt_ms + delay
 
 
 def share_link(capacity_bps: np.ndarray, step_s: float, cross: CrossTraffic | None, bottleneck: Bottleneck | None,
@@ -136,7 +154,9 @@ def share_link(capacity_bps: np.ndarray, step_s: float, cross: CrossTraffic | No
             return LinkResult(available_bps=cr.available_bps, cross_bps=cr.cross_bps, queue_ms=q.queue_ms,
                               drop_share=q.drop_share, cross=cr if details else None, queue=q if details else None,
                               hold_loss=np.zeros(n) if details else None)
-        loss = reno_loss(cr.responsive_bps, cr.n_responsive, cross.responsive_rtt_ms, bottleneck.packet_bytes)
+        loss = reno_loss(cr.responsive_bps, cr.n_responsive,
+                         level_rtt_ms(bottleneck, c, float(np.mean(c)), cross.responsive_rtt_ms),
+                         bottleneck.packet_bytes)
         share = c if fl.unresp is None else fl.left
         over = None if fl.unresp is None else np.maximum(fl.unresp - c, 0.0)
         q = standing_queue(c, step_s, bottleneck, responsive_bps=cr.responsive_bps, share_bps=share,
@@ -145,7 +165,7 @@ def share_link(capacity_bps: np.ndarray, step_s: float, cross: CrossTraffic | No
                           drop_share=q.drop_share, cross=cr, queue=q, hold_loss=loss)
     # the fast path: cross traffic and queue chunk by chunk, only the four outputs are full-length
     available, cross_bps = np.empty(n), np.empty(n)
-    rtt_ms, pkt = cross.responsive_rtt_ms, bottleneck.packet_bytes
+    rtt_ms, pkt, mean_c = cross.responsive_rtt_ms, bottleneck.packet_bytes, float(np.mean(c))
 
     def provider(k: int, end: int) -> LinkChunk:
         n_resp, avail, resp, left, unresp = fl.chunk(k, end)
@@ -157,10 +177,11 @@ def share_link(capacity_bps: np.ndarray, step_s: float, cross: CrossTraffic | No
         else:
             cross_bps[k:end] = (cc - left) + resp
             over = np.maximum(unresp - cc, 0.0)
-        return LinkChunk(cc, resp, left, reno_loss(resp, n_resp, rtt_ms, pkt), over)
+        return LinkChunk(cc, resp, left, reno_loss(resp, n_resp, level_rtt_ms(bottleneck, cc, mean_c, rtt_ms), pkt),
+                         over)
 
-    q = run_standing(bottleneck, n, step_s, float(np.mean(c)), float(cross.responsive_probe), provider)
+    q = run_standing(bottleneck, n, step_s, mean_c, float(cross.responsive_probe), provider)
     return LinkResult(available_bps=available, cross_bps=cross_bps, queue_ms=q.queue_ms, drop_share=q.drop_share)
 
 
-__all__ = ["LinkResult", "share_link", "reno_loss"]
+__all__ = ["LinkResult", "share_link", "reno_loss", "level_rtt_ms"]
