@@ -251,3 +251,11 @@ def test_cell_changes_and_event_resampling_use_the_labels():
     assert tr.summary()["cell_changes"] == 3.0          # a -> b -> a -> c, unknown labels skipped
     r = tr.resample(0.4)
     assert list(r["event"]) == ["handover", "outage"]
+
+
+def test_resampled_loss_stays_a_fraction():
+    # time-weighted means of 1.0 over uneven intervals can round to 1 + 1 ulp; a fraction must stay <= 1
+    t = np.cumsum(np.full(50, 0.1) + np.linspace(0, 1e-3, 50))
+    tr = Trace.from_columns(t, bandwidth_bps=np.full(50, 1e6), loss=np.ones(50))
+    out = tr.resample(0.37)
+    assert np.nanmax(out["loss"]) <= 1.0 and np.nanmin(out["loss"]) == pytest.approx(1.0)

@@ -534,6 +534,61 @@ def scenario_keys() -> None:
         click.echo(f"{key:36} {'' if default is None else default!s:14} {how}")
 
 
+# --- coverage --------------------------------------------------------------------------------------
+@cli.command("coverage")
+@_catalog_option
+@click.option("--real", "real", multiple=True, metavar="EXPR",
+              help="Selection of the field traces (repeatable, all must hold) [default: origin=measured].")
+@click.option("--synthetic", "synthetic", multiple=True, metavar="EXPR_OR_DIR", required=True,
+              help="Selection of the traces to audit (repeatable), or one folder of trace files.")
+@click.option("--json", "json_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="Write every number here (JSON, stable keys).")
+@click.option("--html", "html_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="Write the self-contained HTML report here.")
+@click.option("--scales", default="10,60,300", show_default=True, help="Window lengths in seconds.")
+@click.option("--step", default=None, help="Common sample step (default: the coarser set's median step, two digits), e.g. 1s.")
+@click.option("--splits", default=10, show_default=True, help="Seeded group splits of the real set for the noise floor.")
+@click.option("--seed", default=0, show_default=True, help="Seed of the splits and subsamples.")
+@click.option("-k", "--neighbours", "k", default=5, show_default=True, help="k of the k-NN metrics.")
+@click.pass_context
+def coverage_cmd(ctx: click.Context, catalog_path: Path | None, real: tuple[str, ...], synthetic: tuple[str, ...],
+                 json_path: Path | None, html_path: Path | None, scales: str, step: str | None, splits: int,
+                 seed: int, k: int) -> None:
+    """How far the synthetic traces are from the field, beside the field's own noise floor."""
+    from .compare import coverage
+    from .compare.inputs import resolve
+    from .units import parse_duration_s
+
+    try:
+        scale_list = [parse_duration_s(v.strip(), "--scales") for v in scales.split(",") if v.strip()]
+    except TracegenError:
+        raise click.BadParameter(f"'{scales}' is not a list of durations", param_hint="--scales") from None
+    root = _catalog_root(ctx, catalog_path)
+    real_traces, real_label = resolve(root, real or ("origin=measured",), "real")
+    syn_traces, syn_label = resolve(root, synthetic, "synthetic")
+    result = coverage(real_traces, syn_traces, scales_s=scale_list,
+                      step_s=None if step is None else parse_duration_s(step, "--step"), splits=splits, seed=seed,
+                      k=k, labels={"real": real_label, "synthetic": syn_label})
+    for path, text in ((json_path, result.to_json if json_path else None),
+                       (html_path, result.to_html if html_path else None)):
+        if path is not None:
+            _write_text(path, text())
+    click.echo(result.summary_text())
+    for path, what in ((json_path, "numbers"), (html_path, "report")):
+        if path is not None:
+            click.echo(f"{what}: {path}")
+
+
+def _write_text(path: Path, text: str) -> None:
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+        tmp.write_text(text, encoding="utf-8")
+        os.replace(tmp, path)
+    except OSError as exc:
+        raise TracegenError(f"cannot be written ({exc.strerror})", path=path) from None
+
+
 # --- demo ------------------------------------------------------------------------------------------
 @cli.command()
 @click.option("--seed", default=7, show_default=True, help="Seed of the invented world.")

@@ -466,6 +466,8 @@ class Trace:
                 continue
             if name in RATE_COLUMNS:
                 out[name] = rate(arr)
+                if name == "loss":  # a mean of fractions is a fraction; keep rounding from stepping past 1
+                    out[name] = np.clip(out[name], 0.0, 1.0)
             elif name in POINT_COLUMNS:
                 out[name] = point_values(arr)
             elif name == "state":

@@ -152,8 +152,12 @@ def prepare(traces: Sequence[Trace], step_s: float | None = None) -> Prepared:
             out.append(tr.resample(step))
         else:
             out.append(tr)
-    notes = [f"resampled {n} trace{'s' if n > 1 else ''} from {s} s to {_fmt(step)} s"
-             for s, n in sorted(moved.items(), key=lambda kv: float(kv[0]))]
+    steps = sorted(moved, key=float)
+    n_moved = sum(moved.values())
+    notes = []
+    if n_moved:
+        span = steps[0] if len(steps) == 1 else f"{steps[0]} to {steps[-1]}"
+        notes.append(f"resampled {n_moved} trace{'s' if n_moved > 1 else ''} from {span} s to {_fmt(step)} s")
     if irregular:
         notes.append(f"resampled {irregular} irregular trace{'s' if irregular > 1 else ''} (uneven spacing or "
                      f"gaps) onto a regular {_fmt(step)} s grid")

@@ -42,6 +42,10 @@ class DemoReport:
     model_summary: str = ""
     synthetic_dir: Path | None = None
     synthetic_count: int = 0
+    coverage_html: Path | None = None
+    coverage_json: Path | None = None
+    gap_ratio: float | None = None
+    gap_reading: str = ""
 
     @property
     def trace_ids(self) -> tuple[str, ...]:
@@ -64,6 +68,12 @@ class DemoReport:
         if self.synthetic_dir is not None:
             out.append(f"Synthesised {self.synthetic_count} traces from it into {self.synthetic_dir} "
                        "(with a manifest of weights)")
+        if self.coverage_html is not None:
+            ratio = "-" if self.gap_ratio is None else f"{self.gap_ratio:.2f}"
+            out.append(f"Coverage of the synthetic traces against the measured LTE ones: gap ratio {ratio} "
+                       f"({self.gap_reading}; 1 is as close as the field is to itself)")
+            out.append(f"  report {self.coverage_html}")
+            out.append(f"  numbers {self.coverage_json}")
         example = self.trace_ids[0] if self.trace_ids else "ID"
         out += ["What to try next:", f"  tracegen catalog list{flag}", f"  tracegen catalog stats --by access{flag}",
                 f"  tracegen catalog show {example}{flag}", f"  tracegen catalog verify{flag}"]
@@ -72,13 +82,16 @@ class DemoReport:
                     f"  tracegen fit{flag} --where access=wifi --out wifi-model.json",
                     f"  tracegen synth {self.model_path} --count 5 --duration 10min --step 100ms "
                     "--cross-flows-per-s 0.5 --buffer-ms 150 --handovers-per-min 2 --out synthetic/"]
+        if self.synthetic_dir is not None:
+            out.append(f"  tracegen coverage{flag} --real access=lte --synthetic {self.synthetic_dir} --html report.html")
         return "\n".join(out)
 
 
 def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: float = 300,
                progress: bool | None = None, fit_model: bool = True, synthesise: bool = True) -> DemoReport:
     """Simulate the fleet, write its files under ``root/demo-sources`` and ingest them into the catalog at ``root``;
-    fit a model to the LTE traces (``root/demo-model.json``) and synthesise as many into ``root/demo-synthetic``."""
+    fit a model to the LTE traces (``root/demo-model.json``), synthesise as many into ``root/demo-synthetic``
+    and write the coverage report of those against the measured ones (``root/demo-coverage.html``/``.json``)."""
     from ..catalog import Catalog
     from ..ingest import Labels
     from ..progress import bar
@@ -118,9 +131,22 @@ def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: flo
     if model_path is not None and synthesise:
         synthetic_dir, n_synth = _synthesise(model_path, root / "demo-synthetic", len(cat.ids(["access=lte"])),
                                              duration_s, seed, progress)
+    cov_html = cov_json = None
+    ratio, words = None, ""
+    if synthetic_dir is not None:
+        from ..compare import coverage
+        from ..compare.inputs import read_folder
+
+        result = coverage(list(cat.traces(["access=lte"])), read_folder(synthetic_dir), seed=seed,
+                          labels={"real": "the measured LTE traces (access=lte)", "synthetic": "demo-synthetic"},
+                          progress=progress)
+        cov_html, cov_json = root / "demo-coverage.html", root / "demo-coverage.json"
+        cov_html.write_text(result.to_html(), encoding="utf-8")
+        cov_json.write_text(result.to_json(), encoding="utf-8")
+        ratio, words = result.gap_ratio, result.data["gap_ratio"]["reading"]
     return DemoReport(root, sources, {k: tuple(p.name for p in v) for k, v in sorted(written.items())},
                       tuple(added), tuple(present), counts, seed, float(duration_s), model_path, summary,
-                      synthetic_dir, n_synth)
+                      synthetic_dir, n_synth, cov_html, cov_json, ratio, words)
 
 
 def _synthesise(model_path: Path, out: Path, count: int, duration_s: float, seed: int,
