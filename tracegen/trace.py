@@ -193,8 +193,7 @@ def _canonical_chunks(name: str, arr: np.ndarray) -> list[Any]:
 
     * float: little-endian float64 with one NaN pattern and no -0.0;
     * int: little-endian int64;
-    * str: ``json.dumps([None if v is None else str(v) for v in arr]).encode()``, built from the JSON of
-      each distinct value (pyarrow's dictionary encoding) and repeated runs, never per sample in Python.
+    * str: ``json.dumps([None if v is None else str(v) for v in arr]).encode()`` (``_json_str_chunks``).
     """
     kind = COLUMNS[name][0]
     if kind == "float":
@@ -211,62 +210,30 @@ def _canonical_chunks(name: str, arr: np.ndarray) -> list[Any]:
     return _json_str_chunks(arr)
 
 
-_CHUNK = 1 << 16
-
-
 def _json_str_slow(values: Any) -> list[bytes]:
     return [json.dumps([None if v is None else str(v) for v in values]).encode()]
 
 
-def _json_str_chunks(values: Any) -> list[bytes]:
+def _json_str_chunks(values: Any) -> list[Any]:
+    """``_json_str_slow``'s bytes without a Python pass over the samples: json's C encoder over
+    ``tolist()`` when every value is None or a str; for a column of few labels among unknowns (event
+    marks) the runs of ``null`` are repeated bytes and only the labelled samples are visited."""
     if not (isinstance(values, np.ndarray) and values.dtype == object and values.ndim == 1):
         return _json_str_slow(values)
-    arr = values
-    n = arr.size
-    if n == 0:
-        return [b"[]"]
-    null = _none_mask(arr)
+    n = values.size
+    null = _none_mask(values)
     where = np.flatnonzero(~null)
-    vals = arr[where]
-    try:
-        if vals.size and not _str_values(vals):
-            return _json_str_slow(arr)
-        enc = pa.array(vals, type=pa.string()).dictionary_encode()
-        words = enc.dictionary.to_pylist()
-    except (pa.ArrowException, TypeError, ValueError, UnicodeEncodeError):  # e.g. a lone surrogate
-        return _json_str_slow(arr)
-    # token k is the JSON of distinct value k followed by the separator; the last token is null
-    tokens = [json.dumps(w).encode() + b", " for w in words] + [b"null, "]
-    null_code = len(words)
-    index = enc.indices.to_numpy(zero_copy_only=False).astype(np.int64)
-    if where.size * 32 < n:  # few labels among unknowns (event marks): runs between the labelled samples
-        gaps = np.diff(np.concatenate(([-1], where, [n]))) - 1
-        body = [tokens[null_code] * int(gaps[0])]
-        for code, gap in zip(index.tolist(), gaps[1:].tolist()):  # a loop over labelled samples
-            body += [tokens[code], tokens[null_code] * gap]
-    else:
-        codes = np.full(n, null_code, dtype=np.int64)
-        codes[where] = index
-        cut = np.flatnonzero(codes[1:] != codes[:-1]) + 1
-        if cut.size * 32 < n:  # long runs (cell labels): each run's bytes by repetition
-            start = np.concatenate(([0], cut))
-            length = np.diff(np.append(start, n))
-            body = [tokens[c] * k for c, k in zip(codes[start].tolist(), length.tolist())]  # a loop over runs
-        else:  # short runs: gather the token bytes of each sample with numpy, a chunk at a time
-            pool = np.frombuffer(b"".join(tokens), dtype=np.uint8)
-            size = np.array([len(t) for t in tokens], dtype=np.int64)
-            first = np.cumsum(size) - size
-            body = []
-            for lo in range(0, n, _CHUNK):  # a loop over chunks of 65536 samples
-                c = codes[lo:lo + _CHUNK]
-                k = size[c]
-                at = np.cumsum(k) - k
-                body.append(pool[np.repeat(first[c] - at, k) + np.arange(int(k.sum()))].tobytes())
-    # the last sample has no separator after it: drop the final ", " (from the last non-empty chunk)
-    while not body[-1]:
-        body.pop()
-    body[-1] = memoryview(body[-1])[:-2]
-    return [b"["] + body + [b"]"]
+    labels = values[where]
+    if labels.size and not _str_values(labels):
+        return _json_str_slow(values)
+    if where.size * 32 >= n:
+        return [json.dumps(values.tolist()).encode()]
+    gaps = (np.diff(np.concatenate(([-1], where, [n]))) - 1).tolist()
+    body = [b"null, " * gaps[0]]
+    for label, gap in zip(labels.tolist(), gaps[1:]):  # a loop over labelled samples (under 1 in 32)
+        body += [json.dumps(label).encode() + b", ", b"null, " * gap]
+    text = b"".join(body)
+    return [b"[", text[:-2], b"]"] if text else [b"[]"]
 
 
 @dataclass(frozen=True, eq=False)
