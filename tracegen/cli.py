@@ -569,24 +569,16 @@ def coverage_cmd(ctx: click.Context, catalog_path: Path | None, real: tuple[str,
     result = coverage(real_traces, syn_traces, scales_s=scale_list,
                       step_s=None if step is None else parse_duration_s(step, "--step"), splits=splits, seed=seed,
                       k=k, labels={"real": real_label, "synthetic": syn_label})
+    from .files import write_text_atomic
+
     for path, text in ((json_path, result.to_json if json_path else None),
                        (html_path, result.to_html if html_path else None)):
         if path is not None:
-            _write_text(path, text())
+            write_text_atomic(path, text())
     click.echo(result.summary_text())
     for path, what in ((json_path, "numbers"), (html_path, "report")):
         if path is not None:
             click.echo(f"{what}: {path}")
-
-
-def _write_text(path: Path, text: str) -> None:
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-        tmp.write_text(text, encoding="utf-8")
-        os.replace(tmp, path)
-    except OSError as exc:
-        raise TracegenError(f"cannot be written ({exc.strerror})", path=path) from None
 
 
 # --- demo ------------------------------------------------------------------------------------------

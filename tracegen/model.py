@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import json
 import math
-import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Mapping
@@ -17,6 +16,7 @@ from typing import Any, Mapping
 import numpy as np
 
 from .errors import TracegenError
+from .files import write_text_atomic
 from .fit.ar import ARFit
 from .fit.dwell import DwellFit
 from .fit.events import EventModel
@@ -139,15 +139,7 @@ class PathModel:
         path = Path(path)
         if path.exists() and not overwrite:
             raise ModelError("exists already", path=path, hint="pass --force to replace it")
-        text = self.to_json()
-        try:
-            path.parent.mkdir(parents=True, exist_ok=True)
-            tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-            tmp.write_text(text)
-            os.replace(tmp, path)
-        except OSError as exc:
-            raise ModelError(f"cannot be written ({exc.strerror})", path=path) from None
-        return path
+        return write_text_atomic(path, self.to_json(), error=ModelError)
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> "PathModel":

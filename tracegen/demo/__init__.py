@@ -136,13 +136,14 @@ def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: flo
     if synthetic_dir is not None:
         from ..compare import coverage
         from ..compare.inputs import read_folder
+        from ..files import write_text_atomic
 
         result = coverage(list(cat.traces(["access=lte"])), read_folder(synthetic_dir), seed=seed,
                           labels={"real": "the measured LTE traces (access=lte)", "synthetic": "demo-synthetic"},
                           progress=progress)
         cov_html, cov_json = root / "demo-coverage.html", root / "demo-coverage.json"
-        cov_html.write_text(result.to_html(), encoding="utf-8")
-        cov_json.write_text(result.to_json(), encoding="utf-8")
+        write_text_atomic(cov_html, result.to_html())
+        write_text_atomic(cov_json, result.to_json())
         ratio, words = result.gap_ratio, result.data["gap_ratio"]["reading"]
     return DemoReport(root, sources, {k: tuple(p.name for p in v) for k, v in sorted(written.items())},
                       tuple(added), tuple(present), counts, seed, float(duration_s), model_path, summary,

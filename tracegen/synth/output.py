@@ -28,6 +28,7 @@ import numpy as np
 
 from .. import __version__
 from ..errors import TracegenError
+from ..files import write_text_atomic
 from ..trace import Trace
 from .tilt import effective_sample_size, normalised_weights
 
@@ -68,16 +69,6 @@ def _finish_rows(rows: list[dict[str, Any]]) -> None:
             r["normalised_weight"] = v
 
 
-def _write_text_atomic(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        tmp.write_text(text, encoding="utf-8")
-        os.replace(tmp, path)
-    except OSError as exc:
-        tmp.unlink(missing_ok=True)
-        raise TracegenError(f"cannot be written ({exc.strerror})", path=path) from None
-
-
 def write_manifest(rows: list[dict[str, Any]], path: Path) -> Path:
     """The weight table as CSV (columns MANIFEST_COLUMNS), written atomically."""
     buf = io.StringIO()
@@ -86,9 +77,7 @@ def write_manifest(rows: list[dict[str, Any]], path: Path) -> Path:
     for r in rows:
         w.writerow([r["index"], r["id"], r["file"], repr(r["log_likelihood_ratio"]), repr(r["weight"]),
                     repr(r["normalised_weight"])])
-    path.parent.mkdir(parents=True, exist_ok=True)
-    _write_text_atomic(path, buf.getvalue())
-    return path
+    return write_text_atomic(path, buf.getvalue())
 
 
 def check_targets(out_dir: Path, name: str, indices: range, fmt: str, *, force: bool = False,
@@ -154,7 +143,7 @@ def write_files(traces: Iterable[Trace], out_dir: str | Path, *, fmt: str = "par
     summary = {"format": "tracegen-synthesis-run", "version": 1, "tracegen_version": __version__,
                "traces": len(report.rows), "effective_sample_size": report.effective_sample_size,
                "files": fmt, "manifest": str(report.manifest.name), **dict(run or {})}
-    _write_text_atomic(out_dir / RUN_FILE, json.dumps(summary, indent=1, sort_keys=True, default=str) + "\n")
+    write_text_atomic(out_dir / RUN_FILE, json.dumps(summary, indent=1, sort_keys=True, default=str) + "\n")
     return report
 
 

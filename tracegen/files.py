@@ -1,0 +1,22 @@
+"""Writing a text file so that no reader ever sees half of it: a temporary name beside it, then a rename."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from .errors import TracegenError
+
+
+def write_text_atomic(path: str | Path, text: str, *, error: type[TracegenError] = TracegenError) -> Path:
+    """Write ``text`` (UTF-8) to ``path``, creating its folder; ``error`` names the path on failure."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp.write_text(text, encoding="utf-8")
+        os.replace(tmp, path)
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        raise error(f"cannot be written ({exc.strerror})", path=path) from None
+    return path
