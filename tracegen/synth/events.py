@@ -191,7 +191,10 @@ def _law(model: Any, plan: HandoverPlan | None) -> _HandoverLaw:
 def check_events(model: Any, plan: HandoverPlan | None, tilt: TiltPlan) -> None:
     """Refuse, before anything is drawn, a tilt that would push the failure probability above 1 or
     stretch a log-normal length that has no spread."""
-    law = _law(model, plan)
+    _check_law(_law(model, plan), tilt)
+
+
+def _check_law(law: _HandoverLaw, tilt: TiltPlan) -> None:
     q = law.p_fail * tilt.failure_factor
     if q > 1.0 + 1e-12:
         raise TracegenError(f"failure probability {law.p_fail:.4g} x {tilt.failure_factor:g} = {q:.4g} is above 1",
@@ -209,6 +212,7 @@ def draw_events(model: Any, plan: HandoverPlan | None, tilt: TiltPlan, rng: np.r
     break lengths, post-event states; then outage count, times, lengths.
     """
     law = _law(model, plan)
+    _check_law(law, tilt)  # also here: the sampler can be called without tracegen.synth.check_run
     plan = plan or HandoverPlan()
     llr = 0.0
     # handover times: Poisson (rate tilted) plus the explicit ones; the uniform times cancel in p/q
@@ -219,14 +223,11 @@ def draw_events(model: Any, plan: HandoverPlan | None, tilt: TiltPlan, rng: np.r
     times = np.sort(np.concatenate((rng.uniform(0.0, duration_s, n_random), fixed[fixed < duration_s])))
     n = times.size
     # kinds: failure / interruption / seamless, with the failure probability tilted (the other two keep
-    # their ratio); a factor that pushes it past 1 was refused when the tilt was resolved
+    # their ratio); a factor that pushes it past 1 was refused above
     p = np.array([law.p_fail, law.p_break, max(0.0, 1.0 - law.p_fail - law.p_break)])
     q = p.copy()
     if tilt.failure_factor != 1.0 and law.p_fail > 0:
         q[0] = law.p_fail * tilt.failure_factor
-        if q[0] > 1.0 + 1e-12:
-            raise TracegenError(f"failure probability {law.p_fail:.4g} x {tilt.failure_factor:g} = {q[0]:.4g} "
-                                "is above 1", field="tilt.failure_factor", hint="use a smaller factor")
         rest = p[1:].sum()
         q[1:] = p[1:] / rest * (1.0 - q[0]) if rest > 0 else 0.0
     kind = np.searchsorted(np.cumsum(q)[:-1], rng.random(n), side="right")
