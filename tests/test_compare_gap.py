@@ -159,3 +159,11 @@ def test_cli_compares_a_catalog_selection_with_a_folder(tmp_path, field):
     res = runner.invoke(cli, ["coverage", "--catalog", str(tmp_path / "cat"), "--real", "access=wifi",
                               "--synthetic", str(out)])
     assert res.exit_code == 2 and "real selection access=wifi holds no traces" in res.output
+
+
+def test_the_permutation_test_does_not_move_the_ratios(field):
+    other = traces_of(two_levels(), 12, seed=2)
+    a = coverage(field[:12], other, scales_s=SCALES, n_permutations=0)
+    b = coverage(field[:12], other, scales_s=SCALES, n_permutations=30)
+    assert a.data["gap_ratio"] == b.data["gap_ratio"]
+    assert a.data["scales"]["10"]["energy"]["p_value"] is None and b.data["scales"]["10"]["energy"]["p_value"] > 0

@@ -213,7 +213,7 @@ def _metrics(real: np.ndarray, other: np.ndarray, multi: np.ndarray, *, k: int, 
     return _Metrics(ks, w1, energy, pr)
 
 
-def _compare_scale(key: str, real: WindowTable, syn: WindowTable, splits: list[np.ndarray], *, k: int,
+def _compare_scale(key: str, index: int, real: WindowTable, syn: WindowTable, splits: list[np.ndarray], *, k: int,
                    max_points: int, n_permutations: int, seed: int, notes: list[str],
                    real_traces: Sequence[Trace], syn_traces: Sequence[Trace]) -> tuple[dict[str, Any], ScaleData]:
     names = real.features
@@ -236,7 +236,7 @@ def _compare_scale(key: str, real: WindowTable, syn: WindowTable, splits: list[n
         if u and not m:
             notes.append(f"{key}: feature {f} is missing in over {1 - MIN_ROW_SHARE:.0%} of windows; compared on "
                          "its own, left out of the multivariate metrics")
-    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(2, len(key), sum(map(ord, key)))))
+    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(2, index)))
 
     full = _metrics(r, s, multi, k=k, max_points=max_points, rng=rng, prdc_points=None)  # every row: holes
     p_value = None
@@ -245,7 +245,8 @@ def _compare_scale(key: str, real: WindowTable, syn: WindowTable, splits: list[n
         p_value = dist.permutation_pvalue(
             rm[dist.complete_rows(rm)], sm[dist.complete_rows(sm)],
             functools.partial(dist.energy_distance, max_points=max_points, rng=np.random.default_rng(seed)),
-            n_permutations=n_permutations, rng=rng)
+            # a stream of its own: asking for more or fewer permutations leaves every other number as it is
+            n_permutations=n_permutations, rng=np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(4, index))))
 
     floor_ks, floor_w1, floor_e, floor_cov, floor_rec = [], [], [], [], []
     gap_ks, gap_w1, gap_e, gap_cov, gap_rec = [], [], [], [], []
@@ -354,7 +355,7 @@ def _holes(table: WindowTable, rows: np.ndarray, traces: Sequence[Trace], top: i
 # over time
 
 
-def _temporal(real: Prepared, syn: Prepared, splits: list[np.ndarray], max_lag_s: float,
+def _temporal(real: Prepared, syn: Prepared, splits: list[np.ndarray], max_lag_s: float, seed: int,
               result: CoverageResult) -> dict[str, Any]:
     lags, acf_r = pooled_acf(real, max_lag_s)
     _, acf_s = pooled_acf(syn, max_lag_s)
@@ -376,7 +377,7 @@ def _temporal(real: Prepared, syn: Prepared, splits: list[np.ndarray], max_lag_s
 
     floors: dict[str, list[float]] = {"acf": [], "dwell": [], "outages_per_hour": [], "handovers_per_hour": []}
     gaps: dict[str, list[float]] = {k: [] for k in floors}
-    rng = np.random.default_rng(np.random.SeedSequence(0, spawn_key=(3,)))
+    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(3,)))
     for mask in splits:
         a = Prepared(tuple(t for t, m in zip(real.traces, mask) if m), real.step_s, ())
         b = Prepared(tuple(t for t, m in zip(real.traces, mask) if not m), real.step_s, ())
@@ -478,8 +479,8 @@ def coverage(real: Sequence[Trace], synthetic: Sequence[Trace], *, scales_s: Seq
     result = CoverageResult({})
     per_scale: dict[str, Any] = {}
     tables = [(s, scale_key(s)) for s in scales] + [(math.inf, TRACE_SCALE)]
-    with bar(tables, label="comparing windows", enabled=progress) as items:
-        for s, key in items:
+    with bar(list(enumerate(tables)), label="comparing windows", enabled=progress) as items:
+        for index, (s, key) in items:
             if math.isfinite(s):
                 wr, ws = window_features(prep_r, s), window_features(prep_s, s)
             else:
@@ -489,7 +490,7 @@ def coverage(real: Sequence[Trace], synthetic: Sequence[Trace], *, scales_s: Seq
                 notes.append(f"{key}: fewer than two windows in the {'real' if len(wr) < 2 else 'synthetic'} set "
                              f"(traces shorter than {key} s?); scale left out")
                 continue
-            part, data = _compare_scale(key, wr, ws, split_masks, k=k, max_points=max_points,
+            part, data = _compare_scale(key, index, wr, ws, split_masks, k=k, max_points=max_points,
                                         n_permutations=n_permutations, seed=seed, notes=notes,
                                         real_traces=prep_r.traces, syn_traces=prep_s.traces)
             per_scale[key] = part
@@ -498,7 +499,7 @@ def coverage(real: Sequence[Trace], synthetic: Sequence[Trace], *, scales_s: Seq
     if not window_keys:
         raise TracegenError(f"no window scale of {scales} fits the traces (each needs two windows per set)",
                             field="scales_s", hint="use shorter windows, e.g. --scales 10,60")
-    temporal = _temporal(prep_r, prep_s, split_masks, max_lag_s, result)
+    temporal = _temporal(prep_r, prep_s, split_masks, max_lag_s, seed, result)
 
     by_scale = {key: per_scale[key]["energy"]["ratio"] for key in window_keys}
     spread_by_scale = {key: per_scale[key]["energy"]["spread"] for key in window_keys}
