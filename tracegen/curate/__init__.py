@@ -1,0 +1,1 @@
+"""Curating corpora: audit, leak-free splits and widening where a corpus is thin."""
