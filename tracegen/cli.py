@@ -599,6 +599,9 @@ def demo(ctx: click.Context, seed: int, sessions: int, duration: str, catalog_pa
     click.echo(report.text(None if named is None else str(root)))
 
 
+from . import cli_curate  # noqa: E402,F401  (registers audit, split and widen on the group above)
+
+
 def main() -> None:
     """Console entry point."""
     cli(obj={}, prog_name="tracegen")

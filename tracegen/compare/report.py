@@ -24,7 +24,7 @@ REAL_COLOUR, SYNTH_COLOUR, HOLE_COLOUR = "#1f4e79", "#c55a11", "#7a0019"
 READING_CLASS = {"within noise": "ok", "wider than noise": "wide", "far": "far"}
 
 
-def _fmt(v: Any, digits: int = 2) -> str:
+def fmt(v: Any, digits: int = 2) -> str:
     if v is None:
         return "-"
     if isinstance(v, str):
@@ -50,20 +50,20 @@ def summary_text(result: CoverageResult) -> str:
     lines = [f"coverage of {labels.get('synthetic', 'the synthetic set')} ({d['synthetic']['traces']} traces, "
              f"{d['synthetic']['hours']:.2f} h) against {labels.get('real', 'the real set')} "
              f"({d['real']['traces']} traces, {d['real']['hours']:.2f} h) at {d['step_s']:g} s steps",
-             f"gap ratio (worst scale): {_fmt(g['overall'])}  [{g['reading']}]  "
+             f"gap ratio (worst scale): {fmt(g['overall'])}  [{g['reading']}]  "
              f"noise floor from {d['noise_floor']['splits']} group splits of the real set"]
     lines.append(f"{'scale':>8}  {'windows real/synth':>20}  {'energy ratio':>12}  {'split to split':>14}  "
                  f"{'coverage':>9}  reading")
     for key, part in d["scales"].items():
         pr = part.get("prdc") or {}
         sp = part["energy"].get("spread")
-        sp_text = "-" if not sp else f"{_fmt(sp['ratio'][0])}-{_fmt(sp['ratio'][1])}"
+        sp_text = "-" if not sp else f"{fmt(sp['ratio'][0])}-{fmt(sp['ratio'][1])}"
         lines.append(f"{key:>8}  {part['windows']['real']:>9,}/{part['windows']['synthetic']:<10,}  "
-                     f"{_fmt(part['energy']['ratio']):>12}  {sp_text:>14}  {_fmt(pr.get('coverage')):>9}  "
+                     f"{fmt(part['energy']['ratio']):>12}  {sp_text:>14}  {fmt(pr.get('coverage')):>9}  "
                      f"{part['energy']['reading']}")
-    lines.append("over time: " + ", ".join(f"{name} {_fmt(part['ratio'])}" for name, part in d["temporal"].items()))
+    lines.append("over time: " + ", ".join(f"{name} {fmt(part['ratio'])}" for name, part in d["temporal"].items()))
     if d["worst_features"]:
-        lines.append("worst features: " + ", ".join(f"{w['feature']}@{w['scale']} {_fmt(w['ratio'])}"
+        lines.append("worst features: " + ", ".join(f"{w['feature']}@{w['scale']} {fmt(w['ratio'])}"
                                                     for w in d["worst_features"][:5]))
     for note in d["notes"][:8]:
         lines.append(f"note: {note}")
@@ -76,7 +76,7 @@ def summary_text(result: CoverageResult) -> str:
 # plots
 
 
-def _png(fig) -> str:
+def png(fig) -> str:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=80, metadata={"Software": None})
     import matplotlib.pyplot as plt
@@ -85,7 +85,7 @@ def _png(fig) -> str:
     return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode()
 
 
-def _pyplot():
+def pyplot():
     import matplotlib
 
     matplotlib.use("Agg", force=True)
@@ -107,7 +107,7 @@ def cdf_figure(result: CoverageResult, key: str) -> str | None:
     part = result.data["scales"].get(key)
     if data is None or part is None or not part["features"]:
         return None
-    plt = _pyplot()
+    plt = pyplot()
     names = part["features"]
     cols = 4
     rows = -(-len(names) // cols)
@@ -119,17 +119,17 @@ def cdf_figure(result: CoverageResult, key: str) -> str | None:
         _ecdf(ax, data.real[:, j], REAL_COLOUR, "real")
         _ecdf(ax, data.synthetic[:, j], SYNTH_COLOUR, "synthetic")
         ks = part["ks"].get(name, {})
-        ax.set_title(f"{name}\nKS ratio {_fmt(ks.get('ratio'))} ({ks.get('reading', '-')})")
+        ax.set_title(f"{name}\nKS ratio {fmt(ks.get('ratio'))} ({ks.get('reading', '-')})")
         ax.set_ylim(0, 1)
     axes[0, 0].legend(loc="lower right", frameon=False)
     fig.tight_layout()
-    return _png(fig)
+    return png(fig)
 
 
 def acf_figure(result: CoverageResult) -> str | None:
     if not result.acf:
         return None
-    plt = _pyplot()
+    plt = pyplot()
     fig, ax = plt.subplots(figsize=(5.5, 3))
     ax.plot(result.acf["lags_s"], result.acf["real"], color=REAL_COLOUR, label="real")
     ax.plot(result.acf["lags_s"], result.acf["synthetic"], color=SYNTH_COLOUR, label="synthetic")
@@ -138,13 +138,13 @@ def acf_figure(result: CoverageResult) -> str | None:
     ax.set_ylabel("autocorrelation of log bandwidth")
     ax.legend(frameon=False)
     fig.tight_layout()
-    return _png(fig)
+    return png(fig)
 
 
 def dwell_figure(result: CoverageResult) -> str | None:
     if not result.runs:
         return None
-    plt = _pyplot()
+    plt = pyplot()
     fig, axes = plt.subplots(1, 2, figsize=(8, 3))
     for ax, side in zip(axes, ("above", "below")):
         for who, colour in (("real", REAL_COLOUR), ("synthetic", SYNTH_COLOUR)):
@@ -157,7 +157,7 @@ def dwell_figure(result: CoverageResult) -> str | None:
         ax.set_ylabel("share of runs at least this long")
     axes[0].legend(frameon=False)
     fig.tight_layout()
-    return _png(fig)
+    return png(fig)
 
 
 def projection_figure(result: CoverageResult, key: str) -> str | None:
@@ -181,7 +181,7 @@ def projection_figure(result: CoverageResult, key: str) -> str | None:
     def some(n: int) -> np.ndarray:
         return np.sort(rng.permutation(n)[:MAX_DRAWN_POINTS])
 
-    plt = _pyplot()
+    plt = pyplot()
     fig, ax = plt.subplots(figsize=(6, 4.5))
     ir, i_f = some(len(pr)), some(len(pf))
     ax.scatter(pr[ir, 0], pr[ir, 1], s=4, color=REAL_COLOUR, alpha=0.5, label="real windows", lw=0)
@@ -194,13 +194,13 @@ def projection_figure(result: CoverageResult, key: str) -> str | None:
     ax.set_ylabel("second principal axis")
     ax.legend(frameon=False, markerscale=2, loc="best")
     fig.tight_layout()
-    return _png(fig)
+    return png(fig)
 
 
 # --------------------------------------------------------------------------------------------------
 # page
 
-_STYLE = """
+PAGE_STYLE = """
 body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;margin:2rem auto;max-width:72rem;color:#222;
 line-height:1.4;padding:0 1rem}
 h1{font-size:1.4rem}h2{font-size:1.15rem;margin-top:2rem;border-bottom:1px solid #ccc}h3{font-size:1rem}
@@ -216,13 +216,13 @@ def _spread(spread: Any) -> str:
     if not spread:
         return "-"
     (g0, g1), (f0, f1) = spread["ratio"], spread["floor"]
-    return f"{_fmt(g0)}-{_fmt(g1)} (real halves {_fmt(f0)}-{_fmt(f1)})"
+    return f"{fmt(g0)}-{fmt(g1)} (real halves {fmt(f0)}-{fmt(f1)})"
 
 
 def _cell(ratio: Any) -> str:
     r = reading(ratio if isinstance(ratio, (int, float)) else None) if ratio is not None else "no noise floor"
     cls = READING_CLASS.get(r, "")
-    return f'<td class="{cls}" title="{html.escape(r)}">{_fmt(ratio)}</td>'
+    return f'<td class="{cls}" title="{html.escape(r)}">{fmt(ratio)}</td>'
 
 
 def _img(src: str | None, alt: str) -> str:
@@ -239,13 +239,13 @@ def render_html(result: CoverageResult) -> str:
     window_keys = [k for k in keys if k != TRACE_SCALE]
     out = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
            f"<title>tracegen coverage: {e(labels.get('synthetic', 'synthetic'))}</title>",
-           f"<style>{_STYLE}</style></head><body>",
+           f"<style>{PAGE_STYLE}</style></head><body>",
            f"<h1>How far {e(labels.get('synthetic', 'the synthetic set'))} is from "
            f"{e(labels.get('real', 'the field'))}</h1>",
            f"<p>{d['synthetic']['traces']} synthetic traces ({d['synthetic']['hours']:.2f} h) against "
            f"{d['real']['traces']} real traces ({d['real']['hours']:.2f} h, {d['real']['groups']} groups), on a common "
            f"step of {d['step_s']:g} s. tracegen {e(d['tracegen_version'])}.</p>",
-           f'<p class="headline">Gap ratio (worst window scale): <b>{_fmt(g["overall"])}</b>: '
+           f'<p class="headline">Gap ratio (worst window scale): <b>{fmt(g["overall"])}</b>: '
            f"{e(g['reading'])}.</p>",
            "<p>A gap ratio divides a distance between the synthetic set and one half of the real set by the same "
            "distance between the two halves of the real set (split by session, route or device so no session "
@@ -273,13 +273,13 @@ def render_html(result: CoverageResult) -> str:
     for name, part in d["temporal"].items():
         real_v = part.get("real", part.get("mean_above_s", {}).get("real") if name == "dwell" else None)
         syn_v = part.get("synthetic", part.get("mean_above_s", {}).get("synthetic") if name == "dwell" else None)
-        out.append(f"<tr><td class='name'>{e(name)}</td><td>{_fmt(real_v)}</td><td>{_fmt(syn_v)}</td>"
-                   f"<td>{_fmt(part['distance'], 3)}</td><td>{_fmt(part['noise_floor'], 3)}</td>{_cell(part['ratio'])}</tr>")
+        out.append(f"<tr><td class='name'>{e(name)}</td><td>{fmt(real_v)}</td><td>{fmt(syn_v)}</td>"
+                   f"<td>{fmt(part['distance'], 3)}</td><td>{fmt(part['noise_floor'], 3)}</td>{_cell(part['ratio'])}</tr>")
     out.append("</table>")
     worst = d["worst_features"]
     if worst:
         out.append("<p>Worst features: " + ", ".join(f"{e(w['feature'])} at {e(w['scale'])} "
-                                                      f"({_fmt(w['ratio'])}, {e(w['reading'])})" for w in worst[:5])
+                                                      f"({fmt(w['ratio'])}, {e(w['reading'])})" for w in worst[:5])
                    + ".</p>")
 
     out.append("<h2>Feature distributions</h2>")
@@ -300,8 +300,8 @@ def render_html(result: CoverageResult) -> str:
         out.append(f"<p>{holes['count']:,} of {part['windows']['real']:,} real windows "
                    f"({holes['share']:.1%}) have no synthetic window near them (holes); {unreal['count']:,} of "
                    f"{part['windows']['synthetic']:,} synthetic windows ({unreal['share']:.1%}) are far from every "
-                   f"real one. Precision {_fmt(pr['precision'])}, recall {_fmt(pr['recall'])}, density "
-                   f"{_fmt(pr['density'])}, coverage {_fmt(pr['coverage'])} (k = {pr['k']}).</p>")
+                   f"real one. Precision {fmt(pr['precision'])}, recall {fmt(pr['recall'])}, density "
+                   f"{fmt(pr['density'])}, coverage {fmt(pr['coverage'])} (k = {pr['k']}).</p>")
         if holes["traces"]:
             out.append("<table><tr><th class='name'>real trace with holes</th><th class='name'>source</th>"
                        "<th>windows</th><th>share</th><th class='name'>tags</th><th class='name'>first starts (s)</th></tr>")

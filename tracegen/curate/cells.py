@@ -8,15 +8,16 @@ a trace spans as many cells as its conditions change. The dimensions and their d
 dimension     value of a window                                default edges       bins
 ============  ===============================================  ==================  ===================
 level         geometric mean bandwidth of its non-outage       1M, 5M, 20M bit/s   <1M, 1M-5M, 5M-20M,
-              samples, exp(``mean_log_bw``); 0 when all of it                      >=20M
+              samples, exp(``mean_log_bw``); 0 when all of it                      20M+
               is outage
-variability   coefficient of variation ``cv_bw``               0.2, 0.5            <0.2, 0.2-0.5, >=0.5
-rtt           median RTT ``rtt_p50_ms``                        50, 150 ms          <50ms, 50ms-150ms, ...
-loss          mean loss ``loss_mean``                          1 %, 5 %            <1%, 1%-5%, >=5%
-outage        outage share ``outage_share``                    none, 10 %          none, <10%, >=10%
+variability   coefficient of variation ``cv_bw``               0.2, 0.5            <0.2, 0.2-0.5, 0.5+
+rtt           median RTT ``rtt_p50_ms``                        50, 150 ms          <50ms, 50ms-150ms,
+                                                                                   150ms+
+loss          mean loss ``loss_mean``                          1 %, 5 %            <1%, 1%-5%, 5%+
+outage        outage share ``outage_share``                    none, 10 %          none, <10%, 10%+
 ============  ===============================================  ==================  ===================
 
-Bins are right-open, ``[edge_i, edge_i+1)``. ``outage`` has a bin of its own for exactly 0 ("none") before
+Bins are right-open, ``[edge_i, edge_i+1)``; ``X+`` reads "X and above". ``outage`` has a bin of its own for exactly 0 ("none") before
 its edges. A window whose value is unknown (NaN: no RTT measured, say) is in the bin ``unknown`` of that
 dimension. The edges are ours, chosen as round figures that separate what media traffic notices (about
 1 Mbit/s for a video call at low resolution, 5 and 20 Mbit/s for HD and beyond, common practice; ITU-T
@@ -55,6 +56,14 @@ def _si(x: float) -> str:
     return f"{x:g}"
 
 
+def _significant(x: np.ndarray, digits: int = 12) -> np.ndarray:
+    """``x`` rounded to ``digits`` significant digits: exp(log(5e6)) is 4999999.999999999, and a flat
+    5 Mbit/s trace must land in the bin that starts at 5M."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        scale = 10.0 ** (digits - 1 - np.floor(np.log10(np.abs(x))))
+        return np.where(np.isfinite(scale) & (x != 0), np.round(x * scale) / scale, x)
+
+
 @dataclass(frozen=True)
 class Dimension:
     """One axis of the cells: which window value it bins (``feature``), where (``edges``, increasing) and
@@ -90,7 +99,7 @@ class Dimension:
     def labels(self) -> tuple[str, ...]:
         """The bin labels in order (``unknown`` is not among them)."""
         e = [self._show(x) for x in self.edges]
-        out = [f"<{e[0]}"] + [f"{a}-{b}" for a, b in zip(e, e[1:])] + [f">={e[-1]}"]
+        out = [f"<{e[0]}"] + [f"{a}-{b}" for a, b in zip(e, e[1:])] + [f"{e[-1]}+"]
         return ((NONE_LABEL,) if self.zero_bin else ()) + tuple(out)
 
     def values(self, table: WindowTable) -> np.ndarray:
@@ -98,7 +107,7 @@ class Dimension:
         v = table.values[:, table.features.index(self.feature)]
         if self.feature == "mean_log_bw":
             all_outage = table.values[:, table.features.index("outage_share")] >= 1.0
-            v = np.where(all_outage, 0.0, np.exp(v))
+            v = np.where(all_outage, 0.0, _significant(np.exp(v)))
         return v
 
     def codes(self, values: np.ndarray) -> np.ndarray:
