@@ -115,12 +115,13 @@ class WidenResult:
         return out
 
     def summary_text(self) -> str:
-        lines = [f"{'cell':60} {'wanted':>7} {'added':>6} {'drawn':>7} {'accept':>7} {'P(untilted)':>12}  status"]
+        width = max([4] + [len(g.key) for g in self.goals])
+        lines = [f"{'cell':{width}} {'wanted':>7} {'added':>6} {'drawn':>7} {'accept':>7} {'P(untilted)':>12}  status"]
         for g in self.goals:
             d = g.to_data()
             acc = "-" if d["acceptance"] is None else f"{d['acceptance']:.1%}"
             p = "-" if g.p_hat is None else f"{g.p_hat:.2e}"
-            lines.append(f"{g.key:60} {g.wanted:7d} {g.added:6d} {g.windows_drawn:7d} {acc:>7} {p:>12}  {g.status}"
+            lines.append(f"{g.key:{width}} {g.wanted:7d} {g.added:6d} {g.windows_drawn:7d} {acc:>7} {p:>12}  {g.status}"
                          + (f" ({g.reason})" if g.reason else ""))
         if self.before is not None and self.after is not None:
             b, a = len(self.before.flagged()), len(self.after.flagged())

@@ -46,6 +46,8 @@ class DemoReport:
     coverage_json: Path | None = None
     gap_ratio: float | None = None
     gap_reading: str = ""
+    audit_html: Path | None = None
+    audit_flagged: int = 0
 
     @property
     def trace_ids(self) -> tuple[str, ...]:
@@ -74,6 +76,9 @@ class DemoReport:
                        f"({self.gap_reading}; 1 is as close as the field is to itself)")
             out.append(f"  report {self.coverage_html}")
             out.append(f"  numbers {self.coverage_json}")
+        if self.audit_html is not None:
+            out.append(f"Audit of the synthetic traces against the measured LTE ones: {self.audit_flagged} condition "
+                       f"cells empty or thin: {self.audit_html}")
         example = self.trace_ids[0] if self.trace_ids else "ID"
         out += ["What to try next:", f"  tracegen catalog list{flag}", f"  tracegen catalog stats --by access{flag}",
                 f"  tracegen catalog show {example}{flag}", f"  tracegen catalog verify{flag}"]
@@ -84,6 +89,9 @@ class DemoReport:
                     "--cross-flows-per-s 0.5 --buffer-ms 150 --handovers-per-min 2 --out synthetic/"]
         if self.synthetic_dir is not None:
             out.append(f"  tracegen coverage{flag} --real access=lte --synthetic {self.synthetic_dir} --html report.html")
+            out.append(f"  tracegen audit{flag} origin=measured --html audit.html")
+            out.append(f"  tracegen split{flag} origin=measured --by group --parts 0.7,0.15,0.15 --out splits.csv")
+            out.append(f"  tracegen widen {self.model_path}{flag} {self.synthetic_dir} --against access=lte --out widened/")
         return "\n".join(out)
 
 
@@ -91,7 +99,8 @@ def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: flo
                progress: bool | None = None, fit_model: bool = True, synthesise: bool = True) -> DemoReport:
     """Simulate the fleet, write its files under ``root/demo-sources`` and ingest them into the catalog at ``root``;
     fit a model to the LTE traces (``root/demo-model.json``), synthesise as many into ``root/demo-synthetic``
-    and write the coverage report of those against the measured ones (``root/demo-coverage.html``/``.json``)."""
+    and write the coverage report of those against the measured ones (``root/demo-coverage.html``/``.json``)
+    and their audit against them (``root/demo-audit.html``/``.json``)."""
     from ..catalog import Catalog
     from ..ingest import Labels
     from ..progress import bar
@@ -131,8 +140,8 @@ def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: flo
     if model_path is not None and synthesise:
         synthetic_dir, n_synth = _synthesise(model_path, root / "demo-synthetic", len(cat.ids(["access=lte"])),
                                              duration_s, seed, progress)
-    cov_html = cov_json = None
-    ratio, words = None, ""
+    cov_html = cov_json = audit_html = None
+    ratio, words, flagged = None, "", 0
     if synthetic_dir is not None:
         from ..compare import coverage
         from ..compare.inputs import read_folder
@@ -145,9 +154,17 @@ def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: flo
         write_text_atomic(cov_html, result.to_html())
         write_text_atomic(cov_json, result.to_json())
         ratio, words = result.gap_ratio, result.data["gap_ratio"]["reading"]
+        from ..curate.audit import audit
+
+        checked = audit(read_folder(synthetic_dir), against=list(cat.traces(["access=lte"])),
+                        labels={"selection": "demo-synthetic", "reference": "the measured LTE traces"})
+        audit_html = root / "demo-audit.html"
+        write_text_atomic(audit_html, checked.to_html())
+        write_text_atomic(root / "demo-audit.json", checked.to_json())
+        flagged = len(checked.flagged())
     return DemoReport(root, sources, {k: tuple(p.name for p in v) for k, v in sorted(written.items())},
                       tuple(added), tuple(present), counts, seed, float(duration_s), model_path, summary,
-                      synthetic_dir, n_synth, cov_html, cov_json, ratio, words)
+                      synthetic_dir, n_synth, cov_html, cov_json, ratio, words, audit_html, flagged)
 
 
 def _synthesise(model_path: Path, out: Path, count: int, duration_s: float, seed: int,
