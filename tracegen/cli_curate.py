@@ -133,7 +133,7 @@ def split_cmd(ctx: click.Context, selection: tuple[str, ...], catalog_path: Path
     result.write(out, force=force)
     if json_path is not None:
         write_text_atomic(json_path, json.dumps(result.to_data(), indent=1, allow_nan=False) + "\n")
-    click.echo(result.summary_text())
+    click.echo(result.summary_text().rstrip())
     click.echo(f"manifest: {out}")
 
 
