@@ -37,6 +37,8 @@ from __future__ import annotations
 import math
 import shlex
 from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -246,10 +248,8 @@ def tc_script(trace: Trace, *, qdisc: str = "tbf", mtu: int = 1500, min_step_s: 
     return "".join(out)
 
 
-def write_tc_script(trace: Trace, path, *, force: bool = False, **options) -> "Path":
+def write_tc_script(trace: Trace, path: str | Path, *, force: bool = False, **options: Any) -> Path:
     """Write :func:`tc_script` to ``path`` (executable), refusing an existing file unless ``force``."""
-    from pathlib import Path
-
     from ..files import write_text_atomic
 
     path = Path(path)
