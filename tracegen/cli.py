@@ -599,7 +599,7 @@ def demo(ctx: click.Context, seed: int, sessions: int, duration: str, catalog_pa
     click.echo(report.text(None if named is None else str(root)))
 
 
-from . import cli_curate  # noqa: E402,F401  (registers audit, split and widen on the group above)
+from . import cli_curate, cli_export  # noqa: E402,F401  (register audit, split, widen, export, replay above)
 
 
 def main() -> None:

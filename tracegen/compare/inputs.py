@@ -14,11 +14,25 @@ from ..trace import Trace
 SKIPPED_NAMES = {"manifest.csv", "run.json"}  # what `tracegen synth --out` writes beside the traces
 
 
+def read_trace_file(path: str | Path) -> list[Trace]:
+    """The traces of one file: Parquet written by tracegen (one trace), or CSV/TSV whose columns carry the
+    Trace names (t_s, bandwidth_bps, ...), read by the ordinary CSV reader."""
+    from ..ingest import read_file
+
+    path = Path(path)
+    if path.suffix == ".parquet":
+        try:
+            return [Trace.from_arrow(pq.read_table(path), path=str(path))]
+        except (pa.ArrowException, OSError) as exc:
+            raise TracegenError(f"cannot be read as Parquet ({exc})", path=path) from None
+    if path.suffix in (".csv", ".tsv"):
+        return read_file(path, "csv")
+    raise TracegenError("is not a trace file (.parquet, .csv or .tsv)", path=path)
+
+
 def read_folder(folder: str | Path) -> list[Trace]:
     """Every trace file in ``folder`` (sorted by name): Parquet written by tracegen, or CSV whose columns
     carry the Trace names (t_s, bandwidth_bps, ...), read by the ordinary CSV reader."""
-    from ..ingest import read_file
-
     folder = Path(folder)
     if not folder.is_dir():
         raise TracegenError("is not a folder", path=folder, hint="give a folder of trace files or a selection")
@@ -26,13 +40,8 @@ def read_folder(folder: str | Path) -> list[Trace]:
     for path in sorted(folder.iterdir()):
         if path.name in SKIPPED_NAMES or path.name.startswith(".") or not path.is_file():
             continue
-        if path.suffix == ".parquet":
-            try:
-                out.append(Trace.from_arrow(pq.read_table(path), path=str(path)))
-            except (pa.ArrowException, OSError) as exc:
-                raise TracegenError(f"cannot be read as Parquet ({exc})", path=path) from None
-        elif path.suffix in (".csv", ".tsv"):
-            out.extend(read_file(path, "csv"))
+        if path.suffix in (".parquet", ".csv", ".tsv"):
+            out.extend(read_trace_file(path))
     if not out:
         raise TracegenError("holds no trace files (.parquet or .csv)", path=folder,
                             hint="write traces there with `tracegen synth --out`")
@@ -61,4 +70,4 @@ def resolve(catalog_root: str | Path | None, spec: Sequence[str], side: str) -> 
     return select(catalog_root, spec, side), " and ".join(spec) or "all traces"
 
 
-__all__ = ["read_folder", "select", "resolve"]
+__all__ = ["read_trace_file", "read_folder", "select", "resolve"]
