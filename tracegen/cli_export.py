@@ -35,16 +35,18 @@ def _shaping_options(f):
     f = click.option("--mtu", default=1500, show_default=True, help="Largest packet in bytes (68 to 65535).")(f)
     f = click.option("--min-step", default="100ms", show_default=True,
                      help="Finer steps are averaged onto this one in the tc script.")(f)
+    f = click.option("--queue", "queue", default="200ms", show_default=True,
+                     help="Queue of the rate limiter, as time at each step's rate.")(f)
     f = click.option("--delay-share", default=0.5, show_default=True,
                      help="Share of the RTT delayed on the shaped direction (netem).")(f)
     return f
 
 
-def _tc_options(qdisc: str, mtu: int, min_step: str, delay_share: float) -> dict:
+def _tc_options(qdisc: str, mtu: int, min_step: str, delay_share: float, queue: str) -> dict:
     from .units import parse_duration_s
 
     return {"qdisc": qdisc, "mtu": mtu, "min_step_s": parse_duration_s(min_step, "--min-step"),
-            "delay_share": delay_share}
+            "delay_share": delay_share, "queue_ms": parse_duration_s(queue, "--queue") * 1000.0}
 
 
 @cli.command("export")
@@ -60,12 +62,12 @@ def _tc_options(qdisc: str, mtu: int, min_step: str, delay_share: float) -> dict
 @click.pass_context
 def export_cmd(ctx: click.Context, refs: tuple[str, ...], catalog_path: Path | None, to: str, out: Path, force: bool,
                packet_bytes: int, schedule_format: str, nan: str, qdisc: str, mtu: int, min_step: str,
-               delay_share: float) -> None:
+               delay_share: float, queue: str) -> None:
     """Write traces for a test bench: tc script, packet schedule, CSV, Parquet or JSON lines."""
     from .export import export
 
     traces = _traces(ctx, refs, catalog_path)
-    extra = _tc_options(qdisc, mtu, min_step, delay_share) if to == "tc" else {}
+    extra = _tc_options(qdisc, mtu, min_step, delay_share, queue) if to == "tc" else {}
     paths = export(traces, to, out, force=force, packet_bytes=packet_bytes, nan=nan, schedule_format=schedule_format,
                    **extra)
     for p in paths:
@@ -84,7 +86,7 @@ def export_cmd(ctx: click.Context, refs: tuple[str, ...], catalog_path: Path | N
 @_shaping_options
 @click.pass_context
 def replay_cmd(ctx: click.Context, ref: str, command: tuple[str, ...], catalog_path: Path | None, name: str,
-               dry_run: bool, nan: str, qdisc: str, mtu: int, min_step: str, delay_share: float) -> None:
+               dry_run: bool, nan: str, qdisc: str, mtu: int, min_step: str, delay_share: float, queue: str) -> None:
     """Replay a trace on a veth pair between two fresh network namespaces (root), traffic from NAME-send to
     NAME-recv shaped; run COMMAND meanwhile (e.g. -- ip netns exec tgr-send iperf3 ...); all removed after."""
     import subprocess
@@ -94,7 +96,7 @@ def replay_cmd(ctx: click.Context, ref: str, command: tuple[str, ...], catalog_p
     from .export.tc import tc_script
 
     (trace,) = _traces(ctx, (ref,), catalog_path)[:1]
-    options = dict(nan=nan, **_tc_options(qdisc, mtu, min_step, delay_share))
+    options = dict(nan=nan, **_tc_options(qdisc, mtu, min_step, delay_share, queue))
     if dry_run:
         with tempfile.TemporaryDirectory() as tmp:
             path = Path(tmp) / "replay.sh"
