@@ -37,6 +37,7 @@ import numpy as np
 
 from .. import __version__
 from ..errors import TracegenError
+from ..plainjson import plain
 from ..trace import Trace
 from . import distances as dist
 from .features import (DEFAULT_SCALES_S, Prepared, WindowTable, dwell_runs, event_rates, pooled_acf, prepare,
@@ -77,26 +78,6 @@ def _median(values: list[float]) -> float:
     return float(np.median(v)) if v.size else float("nan")
 
 
-def _plain(value: Any) -> Any:
-    """JSON-safe: numpy scalars to Python, non-finite floats to None (inf as the string "inf")."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return [_plain(v) for v in value.tolist()]
-    if isinstance(value, (np.floating, float)):
-        v = float(value)
-        if math.isinf(v):
-            return "inf"
-        return v if math.isfinite(v) else None
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, np.bool_):
-        return bool(value)
-    return value
-
-
 @dataclass
 class ScaleData:
     """What the report draws for one scale: feature values of both sets (real scale), and the projection."""
@@ -127,7 +108,7 @@ class CoverageResult:
 
     def to_json(self) -> str:
         """Canonical JSON text (sorted keys)."""
-        return json.dumps(_plain(self.data), indent=1, sort_keys=True, allow_nan=False) + "\n"
+        return json.dumps(plain(self.data, inf_as_text=True), indent=1, sort_keys=True, allow_nan=False) + "\n"
 
     def to_html(self) -> str:
         """A self-contained HTML report (plots embedded)."""

@@ -212,6 +212,13 @@ img{max-width:100%;height:auto;display:block;margin:.5rem 0}.note{color:#555;fon
 """
 
 
+def page_end(parts: list[str], notes: list[str]) -> str:
+    """The page from its parts, closed by the list of notes (if any)."""
+    if notes:
+        parts.append("<h2>Notes</h2><ul>" + "".join(f"<li>{html.escape(n)}</li>" for n in notes) + "</ul>")
+    return "\n".join(parts + ["</body></html>"]) + "\n"
+
+
 def _spread(spread: Any) -> str:
     if not spread:
         return "-"
@@ -321,10 +328,7 @@ def render_html(result: CoverageResult) -> str:
                 out.append(f"<tr><td class='name'>{e(tag)}</td><td class='name'>{e(value)}</td>"
                            f"<td>{c['windows']:,}</td><td>{c['missed']:,}</td><td>{c['share']:.0%}</td></tr>")
             out.append("</table>")
-    if d["notes"]:
-        out.append("<h2>Notes</h2><ul>" + "".join(f"<li>{e(n)}</li>" for n in d["notes"]) + "</ul>")
-    out.append("</body></html>")
-    return "\n".join(out) + "\n"
+    return page_end(out, d["notes"])
 
 
 __all__ = ["summary_text", "render_html", "cdf_figure", "acf_figure", "dwell_figure", "projection_figure"]

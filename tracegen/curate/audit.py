@@ -35,6 +35,7 @@ from scipy import special
 from .. import __version__
 from ..compare.gap import common_step
 from ..errors import TracegenError
+from ..plainjson import plain
 from ..trace import Trace
 from .cells import UNKNOWN, CellScheme, CellTable, cell_table
 from .effective import effective_size
@@ -53,18 +54,6 @@ def _round(x: float | None, digits: int = 6) -> float | None:
     if x is None or not math.isfinite(x):
         return None
     return float(round(x, digits))
-
-
-def _plain(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, (np.integer,)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        return _round(float(value))
-    return value
 
 
 @dataclass(frozen=True)
@@ -359,7 +348,7 @@ def audit(traces: Sequence[Trace], *, against: Sequence[Trace] | None = None, mi
         data["duplicates"] = dup.to_data(traces)
         notes.extend(dup.notes)
     data["notes"] = notes
-    return AuditResult(_plain(data))
+    return AuditResult(plain(data, digits=6))
 
 
 __all__ = ["audit", "AuditResult", "binomial_low_tail", "FORMAT_NAME", "THIN_RATIO", "MIN_EXPECTED", "STATUSES"]

@@ -8,7 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from ..compare.report import PAGE_STYLE, REAL_COLOUR, SYNTH_COLOUR, fmt, png, pyplot
+from ..compare.report import PAGE_STYLE, REAL_COLOUR, SYNTH_COLOUR, fmt, page_end, png, pyplot
 
 STATUS_CLASS = {"ok": "ok", "over": "wide", "outside": "wide", "thin": "far", "empty": "far"}
 SHOWN_ROWS = 25
@@ -261,10 +261,7 @@ def render_html(result) -> str:
                            f"<td class='name'>{e(', '.join(p['reasons']))}</td><td>{fmt(p.get('corr'), 3)}</td>"
                            f"<td>{fmt(p.get('lag_s'), 1)}</td><td>{fmt(p.get('overlap_s'), 0)}</td></tr>")
             out.append("</table>")
-    if d["notes"]:
-        out.append("<h2>Notes</h2><ul>" + "".join(f"<li>{e(n)}</li>" for n in d["notes"]) + "</ul>")
-    out.append("</body></html>")
-    return "\n".join(out) + "\n"
+    return page_end(out, d["notes"])
 
 
 __all__ = ["summary_text", "render_html", "marginals_figure", "heatmap_figure", "durations_figure"]

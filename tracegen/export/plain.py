@@ -15,7 +15,6 @@ half of it; an existing file is refused unless ``force``.
 from __future__ import annotations
 
 import json
-import math
 import os
 from collections.abc import Callable
 from pathlib import Path
@@ -24,6 +23,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import TracegenError
+from ..plainjson import plain
 from ..trace import COLUMNS, SCHEMA_VERSION, Trace
 
 JSONL_FORMAT = "tracegen-trace-jsonl"
@@ -104,7 +104,7 @@ def jsonl_header(trace: Trace) -> dict[str, Any]:
     """The JSON lines metadata object: identity, provenance, shape and the columns with their units."""
     columns = [{"name": name, "type": COLUMNS[name][0], "unit": UNITS.get(name), "meaning": COLUMNS[name][1]}
                for name in trace.columns]
-    return _plain({"format": JSONL_FORMAT, "format_version": JSONL_FORMAT_VERSION,
+    return plain({"format": JSONL_FORMAT, "format_version": JSONL_FORMAT_VERSION,
                    "schema_version": SCHEMA_VERSION, "id": trace.id, "origin": trace.origin,
                    "source": trace.source, "group": trace.group, "tags": dict(trace.tags),
                    "step_s": trace.step_s, "duration_s": trace.duration_s, "weight": trace.weight,
@@ -142,21 +142,6 @@ def _json_tokens(trace: Trace, name: str) -> list[str]:
     # safe separator to cut the encoded list into its items.
     text = json.dumps(values.tolist(), separators=("\n", ": "), allow_nan=False)
     return text[1:-1].split("\n") if len(values) else []
-
-
-def _plain(value: Any) -> Any:
-    """Metadata as strict JSON values: numpy scalars and arrays unwrapped, NaN and infinities as None."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _plain(value.tolist())
-    if isinstance(value, np.generic):
-        return _plain(value.item())
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
 
 
 __all__ = [
