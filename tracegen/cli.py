@@ -451,11 +451,21 @@ def _is_zero(text: str) -> bool:
         return False
 
 
+def _parallel_options(f):
+    f = click.option("--workers", type=int, default=None,
+                     help="Local worker processes [default: the cores].")(f)
+    f = click.option("--cluster", default=None, metavar="tcp://HOST:PORT|FILE",
+                     help="Run on this Dask cluster (scheduler address or scheduler file; pip install '.[dask]').")(f)
+    return f
+
+
 @cli.command("synth")
 @click.argument("model_file", required=False, type=click.Path(dir_okay=False, path_type=Path))
 @_synth_options
+@_parallel_options
 @click.pass_context
-def synth_cmd(ctx: click.Context, model_file: Path | None, **values: Any) -> None:
+def synth_cmd(ctx: click.Context, model_file: Path | None, workers: int | None, cluster: str | None,
+              **values: Any) -> None:
     """Sample synthetic traces from MODEL_FILE (or the scenario's model) into files or a catalog.
 
     Same model, settings and seed give the same bytes. Each trace records its importance weight when a
@@ -464,7 +474,7 @@ def synth_cmd(ctx: click.Context, model_file: Path | None, **values: Any) -> Non
     from .model import load
     from .progress import bar
     from .synth import iter_synth, model_digest
-    from .synth.output import add_to_catalog, check_targets, write_files
+    from .synth.output import add_to_catalog, check_targets, synth_files
 
     if values.get("catalog") is None and values.get("out") is None and ctx.obj.get("catalog") is not None:
         values["catalog"] = ctx.obj["catalog"]
@@ -472,14 +482,16 @@ def synth_cmd(ctx: click.Context, model_file: Path | None, **values: Any) -> Non
     if plan.output_dir is None and plan.output_catalog is None:
         raise click.UsageError("say where the traces go: --out DIR or --catalog DIR (or output.dir in the scenario)")
     model = load(plan.model_path)
-    stream = iter_synth(model, plan.count, plan.duration_s, plan.step_s, plan.seed, **plan.options())
     run = {"plan": {**plan.to_dict(), "count": plan.count}, "model_sha256": model_digest(model)}
     if plan.output_dir is not None:
         check_targets(plan.output_dir, plan.name, range(plan.count), plan.output_format, force=plan.force,
                       manifest=plan.manifest)
-        with bar(stream, label=f"synthesising {plan.count} traces", length=plan.count) as items:
-            report = write_files(items, plan.output_dir, fmt=plan.output_format, name=plan.name, run=run,
-                                 manifest=plan.manifest)
+        with bar(range(plan.count), label=f"synthesising {plan.count} traces", length=plan.count) as shown:
+            tick = getattr(shown, "update", None)
+            options = {k: v for k, v in plan.options().items() if k != "name"}
+            report = synth_files(model, plan.count, plan.duration_s, plan.step_s, plan.seed, plan.output_dir,
+                                 fmt=plan.output_format, name=plan.name, run=run, manifest=plan.manifest,
+                                 workers=workers, cluster=cluster, progress=tick, **options)
         click.echo(f"wrote {len(report.files)} traces to {plan.output_dir} (manifest {report.manifest})")
     else:
         from .catalog import Catalog
@@ -487,6 +499,8 @@ def synth_cmd(ctx: click.Context, model_file: Path | None, **values: Any) -> Non
         if plan.manifest is not None and plan.manifest.exists() and not plan.force:
             raise TracegenError("exists already", path=plan.manifest, hint="pass --force to replace it")
         cat = Catalog.open(plan.output_catalog, create=True)
+        stream = iter_synth(model, plan.count, plan.duration_s, plan.step_s, plan.seed, workers=workers,
+                            cluster=cluster, **plan.options())
         report = add_to_catalog(stream, cat, count=plan.count, manifest=plan.manifest)
         click.echo(f"added {len(report.rows) - len(report.present)} synthetic traces "
                    f"({len(report.present)} already there) to {cat.root}")

@@ -131,9 +131,33 @@ def synth_one(model: Any, index: int, duration_s: float, step_s: float, seed: in
         weight=float(np.exp(np.clip(llr, -MAX_LOG_WEIGHT, MAX_LOG_WEIGHT))), **extra)
 
 
+_WORKER_MODELS: dict[str, Any] = {}
+
+
+def synth_chunk(job: tuple[str, str, int, int, float, float, int, dict[str, Any]]) -> list[Trace]:
+    """A worker's task: traces ``start .. start+count-1`` of a run, the model arriving as its JSON text
+    (parsed once per worker process and kept by its digest)."""
+    import json
+
+    from ..model import PathModel
+
+    text, digest, start, count, duration_s, step_s, seed, options = job
+    model = _WORKER_MODELS.get(digest)
+    if model is None:
+        model = _WORKER_MODELS[digest] = PathModel.from_dict(json.loads(text))
+    out = [synth_one(model, i, duration_s, step_s, seed, digest=digest, **options) for i in range(start, start + count)]
+    for tr in out:
+        tr.id  # the content hash travels with the trace (it is cached on it), so workers pay for it
+    return out
+
+
 def iter_synth(model: Any, count: int, duration_s: float, step_s: float, seed: int = 0, *, start: int = 0,
-               **options: Any) -> Iterator[Trace]:
-    """Traces ``start .. start+count-1`` one at a time (flat memory for any count); checked up front."""
+               workers: int | None = 1, cluster: str | None = None, **options: Any) -> Iterator[Trace]:
+    """Traces ``start .. start+count-1`` one at a time, in order (flat memory for any count); checked up
+    front. ``workers`` local processes or a Dask ``cluster`` (tracegen.parallel) draw chunks of traces;
+    the bytes are the same as in one process."""
+    from ..parallel import chunks, runner
+
     model, stem = _load(model)
     if stem is not None:
         options.setdefault("name", stem)
@@ -141,10 +165,20 @@ def iter_synth(model: Any, count: int, duration_s: float, step_s: float, seed: i
     check_run(model, count, duration_s, step_s, seed, **{k: options.get(k) for k in
                                                         ("cross_traffic", "bottleneck", "handover", "tilt")})
     digest = model_digest(model)
+    run = runner(workers, cluster)
 
     def generate() -> Iterator[Trace]:
-        for i in range(start, start + count):
-            yield synth_one(model, i, duration_s, step_s, seed, digest=digest, **options)
+        try:
+            if run.kind == "serial":
+                for i in range(start, start + count):
+                    yield synth_one(model, i, duration_s, step_s, seed, digest=digest, **options)
+                return
+            text = model.to_json()
+            jobs = [(text, digest, start + a, n, duration_s, step_s, seed, options) for a, n in chunks(count, run.workers)]
+            for part in run.map(synth_chunk, jobs):
+                yield from part
+        finally:
+            run.close()
 
     return generate()
 
@@ -156,7 +190,8 @@ def synth(model: Any, n: int, duration_s: float, step_s: float, seed: int = 0, *
 
     Options: ``cross_traffic`` (CrossTraffic), ``bottleneck`` (Bottleneck), ``handover`` (HandoverPlan),
     ``tilt`` (Tilt), ``name`` (the run's label in sources and tags), ``tags`` (extra labels),
-    ``scenario`` (recorded in provenance), ``start`` (index of the first trace). Everything is checked
+    ``scenario`` (recorded in provenance), ``start`` (index of the first trace), ``workers`` (local
+    processes, default 1) or ``cluster`` (a Dask scheduler address or file). Everything is checked
     before the first draw. Each trace's ``weight`` is its importance weight p/q (1 without a tilt);
     ``tracegen.synth.tilt.normalised_weights`` normalises a set of them.
     """

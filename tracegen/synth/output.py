@@ -119,12 +119,13 @@ def _write_trace(tr: Trace, path: Path, fmt: str) -> None:
         raise TracegenError(f"cannot be written ({exc.strerror})", path=path) from None
 
 
-def write_files(traces: Iterable[Trace], out_dir: str | Path, *, fmt: str = "parquet", name: str = "model",
-                run: Mapping[str, Any] | None = None, manifest: str | Path | None = None) -> RunReport:
-    """Write each trace to ``out_dir`` as it arrives, then the manifest and ``run.json`` (module docstring).
+def _write_one(tr: Trace, out_dir: Path, fmt: str, name: str) -> tuple[Path, dict[str, Any]]:
+    path = out_dir / f"{file_stem(name, int(tr.provenance.get('index', 0)))}.{fmt}"
+    _write_trace(tr, path, fmt)
+    return path, _row(tr, path.name)
 
-    Call :func:`check_targets` first: this function overwrites.
-    """
+
+def _prepare_dir(out_dir: str | Path, fmt: str) -> Path:
     if fmt not in ("parquet", "csv"):
         raise TracegenError(f"unknown format '{fmt}'", field="output.format", hint="use parquet or csv")
     out_dir = Path(out_dir)
@@ -132,12 +133,11 @@ def write_files(traces: Iterable[Trace], out_dir: str | Path, *, fmt: str = "par
         out_dir.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise TracegenError(f"cannot be created ({exc.strerror})", path=out_dir) from None
-    report = RunReport()
-    for tr in traces:
-        path = out_dir / f"{file_stem(name, int(tr.provenance.get('index', 0)))}.{fmt}"
-        _write_trace(tr, path, fmt)
-        report.files.append(path)
-        report.rows.append(_row(tr, path.name))
+    return out_dir
+
+
+def _close_run(report: RunReport, out_dir: Path, fmt: str, run: Mapping[str, Any] | None,
+               manifest: str | Path | None) -> RunReport:
     _finish_rows(report.rows)
     report.manifest = write_manifest(report.rows, Path(manifest) if manifest else out_dir / "manifest.csv")
     summary = {"format": "tracegen-synthesis-run", "version": 1, "tracegen_version": __version__,
@@ -145,6 +145,59 @@ def write_files(traces: Iterable[Trace], out_dir: str | Path, *, fmt: str = "par
                "files": fmt, "manifest": str(report.manifest.name), **dict(run or {})}
     write_text_atomic(out_dir / RUN_FILE, json.dumps(summary, indent=1, sort_keys=True, default=str) + "\n")
     return report
+
+
+def write_files(traces: Iterable[Trace], out_dir: str | Path, *, fmt: str = "parquet", name: str = "model",
+                run: Mapping[str, Any] | None = None, manifest: str | Path | None = None) -> RunReport:
+    """Write each trace to ``out_dir`` as it arrives, then the manifest and ``run.json`` (module docstring).
+
+    Call :func:`check_targets` first: this function overwrites.
+    """
+    out_dir = _prepare_dir(out_dir, fmt)
+    report = RunReport()
+    for tr in traces:
+        path, row = _write_one(tr, out_dir, fmt, name)
+        report.files.append(path)
+        report.rows.append(row)
+    return _close_run(report, out_dir, fmt, run, manifest)
+
+
+def write_chunk(job: tuple[Any, ...]) -> list[tuple[str, dict[str, Any]]]:
+    """A worker's task: synthesise a chunk of traces (``synth_chunk``) and write each to the output folder
+    (which the worker must reach: a local or shared file system); returns (file, manifest row) pairs."""
+    from . import synth_chunk
+
+    *synth_job, out_dir, fmt, name = job
+    return [(str(p), row) for p, row in (_write_one(tr, Path(out_dir), fmt, name) for tr in synth_chunk(tuple(synth_job)))]
+
+
+def synth_files(model: Any, count: int, duration_s: float, step_s: float, seed: int, out_dir: str | Path, *,
+                fmt: str = "parquet", name: str = "model", run: Mapping[str, Any] | None = None,
+                manifest: str | Path | None = None, workers: int | None = 1, cluster: str | None = None,
+                progress: Any = None, **options: Any) -> RunReport:
+    """Synthesise straight into files with the workers writing them (tracegen.parallel): only manifest rows
+    travel back, so the run scales with the workers. Same files, manifest and run.json as
+    ``write_files(iter_synth(...))``. ``progress(n)`` is called with each chunk's size."""
+    from ..parallel import chunks, runner
+    from . import _load, check_run, model_digest
+
+    model, _ = _load(model)
+    check_run(model, count, duration_s, step_s, seed, **{k: options.get(k) for k in
+                                                        ("cross_traffic", "bottleneck", "handover", "tilt")})
+    out_dir = _prepare_dir(out_dir, fmt)
+    options.setdefault("name", name)
+    digest, text = model_digest(model), model.to_json()
+    report = RunReport()
+    with runner(workers, cluster) as r:
+        jobs = [(text, digest, a, n, duration_s, step_s, seed, options, str(out_dir), fmt, name)
+                for a, n in chunks(count, r.workers)]
+        for part in r.map(write_chunk, jobs):
+            for path, row in part:
+                report.files.append(Path(path))
+                report.rows.append(row)
+            if progress is not None:
+                progress(len(part))
+    return _close_run(report, out_dir, fmt, run, manifest)
 
 
 def add_to_catalog(traces: Iterable[Trace], catalog: Any, *, count: int | None = None,
