@@ -165,7 +165,7 @@ class DaskRunner(Runner):
 def runner(workers: int | None = None, cluster: str | None = None) -> Runner:
     """The runner for ``--workers`` / ``--cluster`` (module docstring)."""
     if cluster:
-        if workers is not None:
+        if workers not in (None, 1):
             raise TracegenError("give --workers or --cluster, not both", field="workers",
                                 hint="a cluster has its own workers")
         return DaskRunner(str(cluster))

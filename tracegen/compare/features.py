@@ -320,32 +320,48 @@ def _window_block(bw: np.ndarray, rtt: np.ndarray, loss: np.ndarray, med: np.nda
     return out
 
 
-def _trace_list(ids: Sequence[tuple[int, Trace]], limit: int = 5) -> str:
-    shown = ", ".join(f"{i} ({tr.id})" for i, tr in ids[:limit])
+def _trace_list(ids: Sequence[tuple[int, str]], limit: int = 5) -> str:
+    shown = ", ".join(f"{i} ({tid})" for i, tid in ids[:limit])
     return shown + (f" and {len(ids) - limit} more" if len(ids) > limit else "")
 
 
-def window_features(prep: Prepared, scale_s: float) -> WindowTable:
-    """WINDOW_FEATURES of every tumbling ``scale_s`` window of every prepared trace (module docstring)."""
+@dataclass(frozen=True)
+class _Rows:
+    """The windows of some traces before their notes: rows, their trace numbers (counted from ``first``,
+    the number of the first trace given), and what was left out."""
+
+    values: np.ndarray
+    trace: np.ndarray
+    start: np.ndarray
+    short: tuple[tuple[int, str], ...]
+    partial: int
+    dropped: int
+    total: int
+
+
+def _check_scale(prep: Prepared, scale_s: float) -> int:
     _check_prepared(prep)
     if not (isinstance(scale_s, (int, float, np.integer, np.floating)) and math.isfinite(scale_s) and scale_s > 0):
         raise TracegenError(f"window scale {scale_s!r} s must be a positive number", field="scale_s")
-    step = prep.step_s
-    m = int(round(scale_s / step))
+    m = int(round(scale_s / prep.step_s))
     if m < 1:
-        raise TracegenError(f"window scale {scale_s:g} s is shorter than the step {step:g} s", field="scale_s",
+        raise TracegenError(f"window scale {scale_s:g} s is shorter than the step {prep.step_s:g} s", field="scale_s",
                             hint="use a longer window or a finer step")
-    notes: list[str] = []
-    if abs(m * step - scale_s) > _REL * scale_s:
-        notes.append(f"windows of {scale_s:g} s are {m} samples of {step:g} s = {m * step:g} s")
+    return m
+
+
+def window_rows(job: tuple[Prepared, int, int]) -> _Rows:
+    """The windows of ``m`` samples of the prepared traces, numbered from ``first`` (a task that
+    tracegen.parallel can run on a chunk of traces anywhere)."""
+    prep, m, first = job
     parts: dict[str, list[np.ndarray]] = {"bw": [], "rtt": [], "loss": [], "med": [], "trace": [], "start": []}
-    short: list[tuple[int, Trace]] = []
+    short: list[tuple[int, str]] = []
     partial = 0
-    for i, tr in enumerate(prep.traces):  # a loop over traces: slices and per-trace medians only
+    for i, tr in enumerate(prep.traces, start=first):  # a loop over traces: slices and per-trace medians only
         n = len(tr)
         nw = n // m
         if nw == 0:
-            short.append((i, tr))
+            short.append((i, tr.id))
             continue
         partial += n % m > 0
         cut = nw * m
@@ -356,15 +372,8 @@ def window_features(prep: Prepared, scale_s: float) -> WindowTable:
         parts["med"].append(np.full(nw, _trace_median(bw)))
         parts["trace"].append(np.full(nw, i, dtype=np.int64))
         parts["start"].append(np.asarray(tr["t_s"])[:cut:m])
-    if short:
-        notes.append(f"{len(short)} trace{'s' if len(short) > 1 else ''} shorter than one {scale_s:g} s window "
-                     f"give no windows: {_trace_list(short)}")
-    if partial:
-        notes.append(f"left out the trailing partial {scale_s:g} s window of {partial} "
-                     f"trace{'s' if partial > 1 else ''}")
     if not parts["bw"]:
-        return WindowTable(float(scale_s), WINDOW_FEATURES, np.zeros((0, len(WINDOW_FEATURES))),
-                           np.zeros(0, np.int64), np.zeros(0), tuple(notes))
+        return _Rows(np.zeros((0, len(WINDOW_FEATURES))), np.zeros(0, np.int64), np.zeros(0), tuple(short), partial, 0, 0)
     bw = np.concatenate(parts["bw"]).reshape(-1, m)
     rtt = np.concatenate(parts["rtt"]).reshape(-1, m)
     loss = np.concatenate(parts["loss"]).reshape(-1, m)
@@ -374,13 +383,48 @@ def window_features(prep: Prepared, scale_s: float) -> WindowTable:
     keep = 2 * np.count_nonzero(~np.isnan(bw), axis=1) >= m
     dropped = int(keep.size - np.count_nonzero(keep))
     if dropped:
-        notes.append(f"dropped {dropped} of {keep.size} windows of {scale_s:g} s with less than half their "
-                     f"bandwidth known")
         bw, rtt, loss, med, trace, start = bw[keep], rtt[keep], loss[keep], med[keep], trace[keep], start[keep]
     rows = max(1, _BLOCK // m)
     blocks = [_window_block(bw[a:a + rows], rtt[a:a + rows], loss[a:a + rows], med[a:a + rows], prep.step_s)
               for a in range(0, bw.shape[0], rows)]  # a loop over blocks of windows
     values = np.concatenate(blocks) if blocks else np.zeros((0, len(WINDOW_FEATURES)))
+    return _Rows(values, trace, start, tuple(short), partial, dropped, int(keep.size))
+
+
+def _chunked(prep: Prepared, m: int, runner) -> list[_Rows]:
+    """Rows of all traces: in this process, or in chunks of traces on ``runner`` (tracegen.parallel)."""
+    if runner is None or runner.kind == "serial" or len(prep.traces) < 2:
+        return [window_rows((prep, m, 0))]
+    from ..parallel import chunks
+
+    jobs = [(Prepared(prep.traces[a:a + n], prep.step_s, ()), m, a) for a, n in chunks(len(prep.traces), runner.workers)]
+    return list(runner.map(window_rows, jobs))
+
+
+def window_features(prep: Prepared, scale_s: float, runner=None) -> WindowTable:
+    """WINDOW_FEATURES of every tumbling ``scale_s`` window of every prepared trace (module docstring).
+    With a ``runner`` (tracegen.parallel) chunks of traces are done there; the table is the same."""
+    m = _check_scale(prep, scale_s)
+    step = prep.step_s
+    parts = _chunked(prep, m, runner)
+    notes: list[str] = []
+    if abs(m * step - scale_s) > _REL * scale_s:
+        notes.append(f"windows of {scale_s:g} s are {m} samples of {step:g} s = {m * step:g} s")
+    short = [x for p in parts for x in p.short]
+    partial = sum(p.partial for p in parts)
+    dropped, total = sum(p.dropped for p in parts), sum(p.total for p in parts)
+    if short:
+        notes.append(f"{len(short)} trace{'s' if len(short) > 1 else ''} shorter than one {scale_s:g} s window "
+                     f"give no windows: {_trace_list(short)}")
+    if partial:
+        notes.append(f"left out the trailing partial {scale_s:g} s window of {partial} "
+                     f"trace{'s' if partial > 1 else ''}")
+    if dropped:
+        notes.append(f"dropped {dropped} of {total} windows of {scale_s:g} s with less than half their "
+                     f"bandwidth known")
+    values = np.concatenate([p.values for p in parts])
+    trace = np.concatenate([p.trace for p in parts])
+    start = np.concatenate([p.start for p in parts])
     return WindowTable(float(scale_s), WINDOW_FEATURES, values, trace, start, tuple(notes))
 
 
@@ -428,11 +472,11 @@ def dwell_runs(prep: Prepared, threshold_log_bw: float) -> tuple[np.ndarray, np.
     return res[0], res[1]
 
 
-def trace_features(prep: Prepared, window_s: float = 60.0) -> WindowTable:
+def trace_features(prep: Prepared, window_s: float = 60.0, runner=None) -> WindowTable:
     """TRACE_FEATURES, one row per prepared trace (module docstring)."""
     _check_prepared(prep)
     n_tr = len(prep.traces)
-    windows = window_features(prep, window_s)
+    windows = window_features(prep, window_s, runner)
     notes = [f"{window_s:g} s windows: {n}" for n in windows.notes]
     values = np.full((n_tr, len(TRACE_FEATURES)), np.nan)
     # spread of the window means (ddof 1), grouped by trace

@@ -432,10 +432,23 @@ def common_step(real: Sequence[Trace], synthetic: Sequence[Trace]) -> float | No
 def coverage(real: Sequence[Trace], synthetic: Sequence[Trace], *, scales_s: Sequence[float] = DEFAULT_SCALES_S,
              step_s: float | None = None, splits: int = 10, seed: int = 0, k: int = 5, max_points: int = 2000,
              n_permutations: int = 100, max_lag_s: float = 120.0, labels: Mapping[str, str] | None = None,
-             progress: bool | None = None) -> CoverageResult:
+             progress: bool | None = None, workers: int | None = 1, cluster: str | None = None) -> CoverageResult:
     """Compare ``synthetic`` with ``real`` at each window scale and over time, beside the real set's own
     noise floor (module docstring). ``labels`` (e.g. {"real": "access=lte", "synthetic": "folder"}) only
-    go into the report. Same inputs and seed give the same numbers."""
+    go into the report. ``workers`` local processes or a Dask ``cluster`` (tracegen.parallel) compute
+    the window features of chunks of traces. Same inputs and seed give the same numbers and bytes,
+    wherever they run."""
+    from ..parallel import runner
+
+    with runner(workers, cluster) as run:
+        return _coverage(real, synthetic, scales_s=scales_s, step_s=step_s, splits=splits, seed=seed, k=k,
+                         max_points=max_points, n_permutations=n_permutations, max_lag_s=max_lag_s, labels=labels,
+                         progress=progress, run=run)
+
+
+def _coverage(real: Sequence[Trace], synthetic: Sequence[Trace], *, scales_s: Sequence[float], step_s: float | None,
+              splits: int, seed: int, k: int, max_points: int, n_permutations: int, max_lag_s: float,
+              labels: Mapping[str, str] | None, progress: bool | None, run: Any) -> CoverageResult:
     from ..progress import bar
 
     real, synthetic = list(real), list(synthetic)
@@ -463,9 +476,9 @@ def coverage(real: Sequence[Trace], synthetic: Sequence[Trace], *, scales_s: Seq
     with bar(list(enumerate(tables)), label="comparing windows", enabled=progress) as items:
         for index, (s, key) in items:
             if math.isfinite(s):
-                wr, ws = window_features(prep_r, s), window_features(prep_s, s)
+                wr, ws = window_features(prep_r, s, run), window_features(prep_s, s, run)
             else:
-                wr, ws = trace_features(prep_r), trace_features(prep_s)
+                wr, ws = trace_features(prep_r, runner=run), trace_features(prep_s, runner=run)
             notes += [f"{key}: real: {n}" for n in wr.notes] + [f"{key}: synthetic: {n}" for n in ws.notes]
             if len(wr) < 2 or len(ws) < 2:
                 notes.append(f"{key}: fewer than two windows in the {'real' if len(wr) < 2 else 'synthetic'} set "
