@@ -82,3 +82,24 @@ def test_runner_refusals(tmp_path):
         runner(None, str(tmp_path / "nothing.json"))
     with runner(1) as r:
         assert list(r.map(abs, [-1, 2, -3])) == [1, 2, 3] and r.kind == "serial"
+
+
+def test_ingest_and_fit_with_workers_are_the_local_run(sets, tmp_path):
+    from tracegen.catalog import Catalog
+    from tracegen.fit import fit
+
+    _, real, _ = sets
+    folder = tmp_path / "csv"
+    folder.mkdir()
+    for i, tr in enumerate(real[:6]):
+        rows = "\n".join(f"{t:.3f},{b:.1f}" for t, b in zip(tr["t_s"], tr["bandwidth_bps"]))
+        (folder / f"run{i}.csv").write_text("time_s,throughput_bps\n" + rows + "\n")
+    options = dict(time_column="time_s", bandwidth_column="throughput_bps", bandwidth_unit="bps")
+    one = Catalog.open(tmp_path / "one", create=True)
+    two = Catalog.open(tmp_path / "two", create=True)
+    assert one.ingest([folder], "csv", **options).added == two.ingest([folder], "csv", workers=2, **options).added
+    assert list(one.index()["id"]) == list(two.index()["id"])
+    traces = list(one.traces())
+    a = fit(traces, states=[2, 3], restarts=1, seed=4, max_iter=20)
+    b = fit(traces, states=[2, 3], restarts=1, seed=4, max_iter=20, workers=2)
+    assert a.to_json() == b.to_json()

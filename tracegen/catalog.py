@@ -100,6 +100,16 @@ def _index_table(rows: pd.DataFrame) -> pa.Table:
     return pa.Table.from_arrays(arrays, schema=schema)
 
 
+def read_task(job: tuple[str, str, Labels, dict[str, Any]]) -> tuple[list[Trace], TracegenError | None]:
+    """A worker's task: one file read by its format's reader; a user's error comes back as a value, so the
+    caller decides (stop, or skip the file)."""
+    fmt, path, labels, opts = job
+    try:
+        return reader(fmt).read(Path(path), labels, **opts), None
+    except TracegenError as exc:
+        return [], exc
+
+
 @dataclass
 class IngestReport:
     """What an ingest did: ids added, ids already present, files that failed (with ``skip_bad``)."""
@@ -307,30 +317,34 @@ class Catalog:
         return report
 
     def ingest(self, paths: Iterable[str | Path], fmt: str, labels: Labels | None = None, *,
-               skip_bad: bool = False, progress: bool | None = None, **options: Any) -> IngestReport:
+               skip_bad: bool = False, progress: bool | None = None, workers: int | None = 1,
+               cluster: str | None = None, **options: Any) -> IngestReport:
         """Read measured files with a format's reader and store their traces in one commit.
 
         All or nothing: if any file is bad the error is raised and the catalog is unchanged, unless
         ``skip_bad``, which stores the good files and lists the bad ones in ``failed``. Files whose
-        traces are already stored add nothing.
+        traces are already stored add nothing. ``workers`` local processes or a Dask ``cluster``
+        (tracegen.parallel) read the files, one task per file (a cluster's workers must see the
+        paths); this process stores what they read, in the files' order, so the catalog is the same.
         """
+        from .parallel import runner
+
         labels = labels or Labels()
         opts = check_options(fmt, options)
         files = expand_paths(paths, fmt)
-        read = reader(fmt).read
         report = IngestReport(files=len(files))
-        with self._locked():
+        with self._locked(), runner(workers, cluster) as run:
             known = set(self.index()["id"])
             rows: list[dict[str, Any]] = []
             try:
-                with bar(files, label=f"ingesting {len(files)} {fmt} files", enabled=progress) as items:
-                    for path in items:
-                        try:
-                            traces = read(Path(path), labels, **opts)
-                        except TracegenError as exc:
+                jobs = [(fmt, str(p), labels, opts) for p in files]
+                with bar(run.map(read_task, jobs), label=f"ingesting {len(files)} {fmt} files", length=len(files),
+                         enabled=progress) as items:
+                    for traces, error in items:
+                        if error is not None:
                             if not skip_bad:
-                                raise
-                            report.failed.append(str(exc))
+                                raise error
+                            report.failed.append(str(error))
                             continue
                         for tr in traces:
                             if tr.id in known:

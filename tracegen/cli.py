@@ -133,6 +133,14 @@ def _parse_tags(values: tuple[str, ...]) -> dict[str, str]:
     return tags
 
 
+def _parallel_options(f):
+    f = click.option("--workers", type=int, default=None,
+                     help="Local worker processes [default: the cores].")(f)
+    f = click.option("--cluster", default=None, metavar="tcp://HOST:PORT|FILE",
+                     help="Run on this Dask cluster (scheduler address or scheduler file; pip install '.[dask]').")(f)
+    return f
+
+
 @cli.command()
 @click.argument("files", nargs=-1, required=True, type=click.Path(path_type=Path))
 @click.option("--format", "fmt", type=click.Choice(["csv", "rtcp", "ping", "packets"]), required=True,
@@ -148,10 +156,11 @@ def _parse_tags(values: tuple[str, ...]) -> dict[str, str]:
 @click.option("--json", "as_json", is_flag=True, help="Print the result as JSON.")
 @_reader_options
 @_catalog_option
+@_parallel_options
 @click.pass_context
 def ingest(ctx: click.Context, files: tuple[Path, ...], fmt: str, tags: tuple[str, ...], group: str | None,
            source: str | None, keep_personal: bool, describe: bool, skip_bad: bool, as_json: bool,
-           catalog_path: Path | None, **options: Any) -> None:
+           catalog_path: Path | None, workers: int | None, cluster: str | None, **options: Any) -> None:
     """Read measured FILES (or directories of them) into the catalog."""
     from .ingest import Labels, describe_file, expand_paths
     from .units import parse_duration_s
@@ -167,7 +176,7 @@ def ingest(ctx: click.Context, files: tuple[Path, ...], fmt: str, tags: tuple[st
             click.echo(describe_file(path, fmt, labels, **given))
         return
     cat = _open(ctx, catalog_path, create=True)
-    report = cat.ingest(files, fmt, labels, skip_bad=skip_bad, **given)
+    report = cat.ingest(files, fmt, labels, skip_bad=skip_bad, workers=workers, cluster=cluster, **given)
     if as_json:
         _print_json({"files": report.files, "added": report.added, "present": report.present,
                      "failed": report.failed})
@@ -330,9 +339,11 @@ def _parse_states(text: str) -> list[int]:
 @click.option("--out", "out", type=click.Path(dir_okay=False, path_type=Path), required=True, help="Model file to write (JSON).")
 @click.option("--force", is_flag=True, help="Replace --out if it exists.")
 @_catalog_option
+@_parallel_options
 @click.pass_context
 def fit_cmd(ctx: click.Context, where: tuple[str, ...], states: str, step: str | None, with_rtt: bool, restarts: int,
-            max_iter: int, criterion: str, seed: int, out: Path, force: bool, catalog_path: Path | None) -> None:
+            max_iter: int, criterion: str, seed: int, out: Path, force: bool, catalog_path: Path | None,
+            workers: int | None, cluster: str | None) -> None:
     """Fit a path model to the selected catalog traces and write it as JSON."""
     from .fit import fit
     from .model import ModelError
@@ -345,7 +356,7 @@ def fit_cmd(ctx: click.Context, where: tuple[str, ...], states: str, step: str |
     cat = _open(ctx, catalog_path)
     traces = list(cat.traces(where))
     model = fit(traces, states=counts, step_s=step_s, with_rtt=with_rtt, restarts=restarts, seed=seed,
-                max_iter=max_iter, criterion=criterion, selection=list(where))
+                max_iter=max_iter, criterion=criterion, selection=list(where), workers=workers, cluster=cluster)
     model.save(out)
     click.echo(model.summary_text())
     click.echo(f"wrote {out}")
@@ -449,14 +460,6 @@ def _is_zero(text: str) -> bool:
         return float(text) == 0.0
     except ValueError:
         return False
-
-
-def _parallel_options(f):
-    f = click.option("--workers", type=int, default=None,
-                     help="Local worker processes [default: the cores].")(f)
-    f = click.option("--cluster", default=None, metavar="tcp://HOST:PORT|FILE",
-                     help="Run on this Dask cluster (scheduler address or scheduler file; pip install '.[dask]').")(f)
-    return f
 
 
 @cli.command("synth")
@@ -564,10 +567,11 @@ def scenario_keys() -> None:
 @click.option("--splits", default=10, show_default=True, help="Seeded group splits of the real set for the noise floor.")
 @click.option("--seed", default=0, show_default=True, help="Seed of the splits and subsamples.")
 @click.option("-k", "--neighbours", "k", default=5, show_default=True, help="k of the k-NN metrics.")
+@_parallel_options
 @click.pass_context
 def coverage_cmd(ctx: click.Context, catalog_path: Path | None, real: tuple[str, ...], synthetic: tuple[str, ...],
                  json_path: Path | None, html_path: Path | None, scales: str, step: str | None, splits: int,
-                 seed: int, k: int) -> None:
+                 seed: int, k: int, workers: int | None, cluster: str | None) -> None:
     """How far the synthetic traces are from the field, beside the field's own noise floor."""
     from .compare import coverage
     from .compare.inputs import resolve
@@ -582,7 +586,7 @@ def coverage_cmd(ctx: click.Context, catalog_path: Path | None, real: tuple[str,
     syn_traces, syn_label = resolve(root, synthetic, "synthetic")
     result = coverage(real_traces, syn_traces, scales_s=scale_list,
                       step_s=None if step is None else parse_duration_s(step, "--step"), splits=splits, seed=seed,
-                      k=k, labels={"real": real_label, "synthetic": syn_label})
+                      k=k, labels={"real": real_label, "synthetic": syn_label}, workers=workers, cluster=cluster)
     from .files import write_text_atomic
 
     for path, text in ((json_path, result.to_json if json_path else None),

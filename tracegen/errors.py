@@ -45,6 +45,14 @@ class TracegenError(Exception):
             text += f" ({self.hint})"
         return text
 
+    def __reduce__(self):  # keep the fields when an error travels back from a worker process
+        return _rebuild, (type(self), self.message, self.path, self.line, self.field, self.hint)
+
+
+def _rebuild(cls: type, message: str, path: str | None, line: int | None, field: str | None,
+             hint: str | None) -> TracegenError:
+    return cls(message, path=path, line=line, field=field, hint=hint)
+
 
 class InputError(TracegenError):
     """A measured file or option that cannot be read as given."""

@@ -142,17 +142,31 @@ def _state_range(states: int | Iterable[int]) -> tuple[int, ...]:
     return out
 
 
+def fit_state_count(job: tuple[Any, ...]) -> tuple[int, Any, Any, TracegenError | None]:
+    """A worker's task: the HMM (best of its restarts) and the full candidate model for one state count;
+    a user's error (too many states for the data) comes back as a value."""
+    prep, k, restarts, seed, max_iter, tol, with_outage, max_ar_order = job
+    try:
+        hmm = fit_hmm(prep, k, restarts=restarts, seed=seed, max_iter=max_iter, tol=tol)
+        return k, hmm, _candidate(prep, hmm, with_outage, max_ar_order), None
+    except TracegenError as exc:
+        return k, None, None, exc
+
+
 def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int] = DEFAULT_STATES,
         step_s: float | None = None, with_rtt: bool = False, restarts: int = 3, seed: int = 0,
         max_iter: int = 100, tol: float = 1e-3, criterion: str = "full-bic", max_ar_order: int = 5,
         floor_bps: float = OUTAGE_FLOOR_BPS, selection: Sequence[str] = (),
-        progress: bool | None = None) -> "PathModel":
+        progress: bool | None = None, workers: int | None = 1, cluster: str | None = None) -> "PathModel":
     """Fit a path model to measured traces (see the module docstring for the method).
 
     ``states`` is the number of level states or a range to choose from (outages add a state of their own);
-    ``selection`` only goes into the report; ``tol`` is the EM's log-likelihood tolerance. Same traces and
-    seed give the same model bytes.
+    ``selection`` only goes into the report; ``tol`` is the EM's log-likelihood tolerance. ``workers``
+    local processes or a Dask ``cluster`` (tracegen.parallel) fit the state counts side by side, each
+    with its own restarts and seeds as in one process. Same traces and seed give the same model bytes.
     """
+    from ..parallel import runner
+
     from ..model import PathModel, StateModel
 
     traces = list(traces)
@@ -168,14 +182,14 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
     candidates: dict[int, Candidate] = {}
     table: list[dict[str, Any]] = []
     skipped: list[dict[str, Any]] = []
-    with bar(counts, label=f"fitting {len(counts)} state counts", enabled=progress) as items:
-        for k in items:
-            try:
-                hmm = fit_hmm(prep, k, restarts=restarts, seed=seed, max_iter=max_iter, tol=tol)
-                cand = _candidate(prep, hmm, with_outage, max_ar_order)
-            except TracegenError as exc:
+    jobs = [(prep, k, restarts, seed, max_iter, tol, with_outage, max_ar_order) for k in counts]
+    with runner(workers if len(counts) > 1 else 1, cluster) as run, \
+            bar(run.map(fit_state_count, jobs), label=f"fitting {len(counts)} state counts", length=len(counts),
+                enabled=progress) as items:
+        for k, hmm, cand, exc in items:
+            if exc is not None:
                 if len(counts) == 1:
-                    raise
+                    raise exc
                 skipped.append({"states": k, "reason": str(exc)})  # e.g. too many states for the data
                 continue
             candidates[k] = cand
