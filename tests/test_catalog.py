@@ -180,6 +180,13 @@ def _batch(folder: Path, n: int) -> None:
 
 
 @pytest.mark.slow
+def _cmdline(proc: Path) -> str:
+    try:
+        return (proc / "cmdline").read_bytes().replace(b"\0", b" ").decode(errors="replace").strip()
+    except OSError:
+        return ""
+
+
 def test_sigkill_mid_batch_leaves_a_consistent_catalog(tmp_path):
     # Real kill, real process: ingest 200 files, SIGKILL it at several moments, verify each time.
     folder = tmp_path / "runs"
@@ -203,6 +210,10 @@ def test_sigkill_mid_batch_leaves_a_consistent_catalog(tmp_path):
         result = subprocess.run(verify, capture_output=True, text=True, timeout=60)
         assert result.returncode == 0, result.stdout + result.stderr
     assert killed_mid_batch >= 1
+    # the killed runs' worker processes (ingest reads files in parallel) died with them: none holds the lock
+    time.sleep(0.5)
+    left = [p for p in Path("/proc").glob("[0-9]*") if _cmdline(p).endswith(str(folder)) and "ingest" in _cmdline(p)]
+    assert left == [], f"{len(left)} worker processes outlived their killed parent"
     done = subprocess.run(cmd, capture_output=True, text=True, timeout=300)
     assert done.returncode == 0, done.stderr
     assert len(Catalog.open(root)) == 200

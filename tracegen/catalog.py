@@ -54,6 +54,21 @@ INDEX_COLUMNS = META_COLUMNS + FIGURE_COLUMNS
 _TEXT = {"id", "origin", "source", "group", "tags", "file", "file_sha256", "provenance"}
 
 
+_HELD_LOCKS: set[int] = set()   # descriptors of the catalog locks this process holds
+
+
+def release_inherited_locks() -> None:
+    """In a process forked while a catalog lock was held: drop the inherited descriptors, so the lock
+    ends with its owner (a flock lives as long as any descriptor of it, and a worker outliving a killed
+    parent would otherwise hold the catalog locked)."""
+    for fd in list(_HELD_LOCKS):
+        try:
+            os.close(fd)
+        except OSError:
+            pass
+    _HELD_LOCKS.clear()
+
+
 def _fsync_dir(path: Path) -> None:
     fd = os.open(path, os.O_RDONLY)
     try:
@@ -241,9 +256,11 @@ class Catalog:
             raise CatalogError(f"cannot take the catalog lock ({exc.strerror})", path=self.root) from None
         try:
             fcntl.flock(fd, fcntl.LOCK_EX)
+            _HELD_LOCKS.add(fd)
             self._last_recovery = self._recover()
             yield
         finally:
+            _HELD_LOCKS.discard(fd)
             fcntl.flock(fd, fcntl.LOCK_UN)
             os.close(fd)
 

@@ -91,6 +91,24 @@ def _ordered(submit: Callable[[Any], Any], result: Callable[[Any], R], items: It
             cancel(fut)
 
 
+def _forked_worker() -> None:
+    """First thing in a local worker: let go of any catalog lock inherited from the parent, and on Linux
+    ask to be killed with the parent (prctl PR_SET_PDEATHSIG), so a killed run leaves no workers behind."""
+    import signal
+    import sys
+
+    catalog = sys.modules.get("tracegen.catalog")
+    if catalog is not None:
+        catalog.release_inherited_locks()
+    if sys.platform.startswith("linux"):
+        try:
+            import ctypes
+
+            ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL))  # 1 = PR_SET_PDEATHSIG
+        except (OSError, AttributeError):
+            pass
+
+
 class ProcessRunner(Runner):
     """Local worker processes (forked where the system can)."""
 
@@ -104,7 +122,7 @@ class ProcessRunner(Runner):
         if self._pool is None:
             methods = multiprocessing.get_all_start_methods()
             ctx = multiprocessing.get_context("fork" if "fork" in methods else "spawn")
-            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=ctx)
+            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=ctx, initializer=_forked_worker)
         return self._pool
 
     def map(self, fn: Callable[[T], R], items: Iterable[T]) -> Iterator[R]:
