@@ -25,20 +25,15 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def main() -> None:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--quick", action="store_true", help="10^4 windows per set instead of 10^5")
-    ap.add_argument("--model", default=str(ROOT / "models" / "quillon-lte.json"))
-    args = ap.parse_args()
-
+def measure(windows: int = 100_000, model_path: str | Path = ROOT / "models" / "quillon-lte.json") -> dict:
+    """The whole report for about ``windows`` 10 s windows per set; the dict printed on the last line."""
     import tracegen
     from tracegen.compare import distances
     from tracegen.compare.features import prepare, window_features
 
-    windows = 10_000 if args.quick else 100_000
     duration_s = 3600.0
     count = int(np.ceil(windows * 10.0 / duration_s))
-    model = tracegen.load_model(args.model)
+    model = tracegen.load_model(str(model_path))
     start = time.perf_counter()
     real = tracegen.synth(model, count, duration_s, 1.0, seed=1, name="field")
     synthetic = tracegen.synth(model, count, duration_s, 1.0, seed=2, name="candidate")
@@ -55,14 +50,16 @@ def main() -> None:
             knn_s[0] += time.perf_counter() - t0
 
     distances.prdc = timed
-    start = time.perf_counter()
-    result = tracegen.coverage(real, synthetic, progress=False)
-    compare_s = time.perf_counter() - start
-    start = time.perf_counter()
-    page = result.to_html()
-    text = result.to_json()
-    html_s = time.perf_counter() - start
-    distances.prdc = original
+    try:
+        start = time.perf_counter()
+        result = tracegen.coverage(real, synthetic, progress=False)
+        compare_s = time.perf_counter() - start
+        start = time.perf_counter()
+        page = result.to_html()
+        text = result.to_json()
+        html_s = time.perf_counter() - start
+    finally:
+        distances.prdc = original
 
     from scipy.spatial import cKDTree
 
@@ -79,21 +76,34 @@ def main() -> None:
     ref_s = time.perf_counter() - start
 
     total = compare_s + html_s
-    out = {"windows_per_set": int(result.data["scales"]["10"]["windows"]["real"]), "traces_per_set": count,
-           "synth_s": synth_s, "compare_s": compare_s, "html_s": html_s, "total_s": total,
-           "knn_s": knn_s[0], "knn_share": knn_s[0] / compare_s, "kdtree_reference_s": ref_s,
-           "knn_vs_kdtree_reference": knn_s[0] / ref_s,
-           "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
-           "html_bytes": len(page), "json_bytes": len(text), "gap_ratio": result.gap_ratio,
-           "target_total_s": 120.0, "quick": args.quick}
-    print(f"{out['windows_per_set']:,} windows of 10 s per set ({count} traces of 1 h each), synthesised in {synth_s:.1f} s")
-    print(f"coverage (features, distances, 10 splits)  {compare_s:7.1f} s, of which k-NN metrics {knn_s[0]:.1f} s "
-          f"({out['knn_share']:.0%})")
-    print(f"HTML and JSON                              {html_s:7.1f} s ({len(page) / 1e6:.1f} MB page)")
-    print(f"whole report                               {total:7.1f} s (target < 120 s)")
-    print(f"reference: bare cKDTree 5-NN of the 10 s windows {ref_s:.1f} s; k-NN metrics / reference "
-          f"{out['knn_vs_kdtree_reference']:.1f}x")
-    print(f"peak RSS {out['peak_rss_mib']:.0f} MiB; gap ratio of two samples of one model {result.gap_ratio:.2f}")
+    return {"windows_per_set": int(result.data["scales"]["10"]["windows"]["real"]), "traces_per_set": count,
+            "synth_s": synth_s, "compare_s": compare_s, "html_s": html_s, "total_s": total,
+            "knn_s": knn_s[0], "knn_share": knn_s[0] / compare_s, "kdtree_reference_s": ref_s,
+            "knn_vs_kdtree_reference": knn_s[0] / ref_s,
+            "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+            "html_bytes": len(page), "json_bytes": len(text), "gap_ratio": result.gap_ratio,
+            "target_total_s": 120.0, "quick": windows < 100_000}
+
+
+def print_table(out: dict) -> None:
+    print(f"{out['windows_per_set']:,} windows of 10 s per set ({out['traces_per_set']} traces of 1 h each), "
+          f"synthesised in {out['synth_s']:.1f} s")
+    print(f"coverage (features, distances, 10 splits)  {out['compare_s']:7.1f} s, of which k-NN metrics "
+          f"{out['knn_s']:.1f} s ({out['knn_share']:.0%})")
+    print(f"HTML and JSON                              {out['html_s']:7.1f} s ({out['html_bytes'] / 1e6:.1f} MB page)")
+    print(f"whole report                               {out['total_s']:7.1f} s (target < 120 s)")
+    print(f"reference: bare cKDTree 5-NN of the 10 s windows {out['kdtree_reference_s']:.1f} s; k-NN metrics / "
+          f"reference {out['knn_vs_kdtree_reference']:.1f}x")
+    print(f"peak RSS {out['peak_rss_mib']:.0f} MiB; gap ratio of two samples of one model {out['gap_ratio']:.2f}")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="10^4 windows per set instead of 10^5")
+    ap.add_argument("--model", default=str(ROOT / "models" / "quillon-lte.json"))
+    args = ap.parse_args()
+    out = measure(10_000 if args.quick else 100_000, args.model)
+    print_table(out)
     print(json.dumps(out))
 
 

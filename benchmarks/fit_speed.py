@@ -37,22 +37,17 @@ def make_traces(hours: float, n_traces: int = 60, seed: int = 0) -> list[Trace]:
     return out
 
 
-def main() -> None:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--hours", type=float, default=100.0)
-    ap.add_argument("--states", default="2..6")
-    ap.add_argument("--restarts", type=int, default=3)
-    ap.add_argument("--iterations", type=int, default=20)
-    args = ap.parse_args()
-    lo, hi = (int(v) for v in args.states.split(".."))
+def measure(hours: float = 100.0, states: str = "2..6", restarts: int = 3, iterations: int = 20) -> dict:
+    """Both fits on the same generated data; the dict printed on the last line."""
+    lo, hi = (int(v) for v in states.split(".."))
     counts = range(lo, hi + 1)
-    traces = make_traces(args.hours)
+    traces = make_traces(hours)
     x = np.concatenate([np.log(t["bandwidth_bps"]) for t in traces])[:, None]
     lengths = [len(t) for t in traces]
 
     tracemalloc.start()
     start = time.perf_counter()
-    model = tracegen.fit(traces, states=counts, restarts=args.restarts, max_iter=args.iterations, tol=0.0,
+    model = tracegen.fit(traces, states=counts, restarts=restarts, max_iter=iterations, tol=0.0,
                          progress=False)
     ours_s = time.perf_counter() - start
     ours_peak = tracemalloc.get_traced_memory()[1] / 2**20
@@ -61,22 +56,39 @@ def main() -> None:
     tracemalloc.start()
     start = time.perf_counter()
     for k in counts:
-        for r in range(args.restarts):
-            GaussianHMM(n_components=k, n_iter=args.iterations, tol=0.0,  # library default "diag", as ours for 1-D
+        for r in range(restarts):
+            GaussianHMM(n_components=k, n_iter=iterations, tol=0.0,  # library default "diag", as ours for 1-D
                         random_state=r).fit(x, lengths)
     ref_s = time.perf_counter() - start
     ref_peak = tracemalloc.get_traced_memory()[1] / 2**20
     tracemalloc.stop()
 
-    result = {"samples": int(x.shape[0]), "hours": args.hours, "state_counts": list(counts),
-              "restarts": args.restarts, "iterations": args.iterations, "tracegen_fit_s": ours_s,
-              "hmmlearn_fit_s": ref_s, "ratio": ours_s / ref_s, "tracegen_peak_mib": ours_peak,
-              "hmmlearn_peak_mib": ref_peak, "chosen_level_states": model.report["level_states"]}
-    print(f"{x.shape[0]} samples ({args.hours:g} h), states {lo}..{hi}, {args.restarts} restarts, "
-          f"{args.iterations} EM iterations each")
-    print(f"  tracegen.fit        {ours_s:8.1f} s   peak {ours_peak:7.1f} MiB   chose {model.report['level_states']} levels")
-    print(f"  plain hmmlearn      {ref_s:8.1f} s   peak {ref_peak:7.1f} MiB")
-    print(f"  ratio               {ours_s / ref_s:8.2f}x (target <= 2)")
+    return {"samples": int(x.shape[0]), "hours": hours, "state_counts": list(counts),
+            "restarts": restarts, "iterations": iterations, "tracegen_fit_s": ours_s,
+            "hmmlearn_fit_s": ref_s, "ratio": ours_s / ref_s, "tracegen_peak_mib": ours_peak,
+            "hmmlearn_peak_mib": ref_peak, "chosen_level_states": model.report["level_states"]}
+
+
+def print_table(result: dict) -> None:
+    r = result
+    counts = r["state_counts"]
+    print(f"{r['samples']} samples ({r['hours']:g} h), states {counts[0]}..{counts[-1]}, {r['restarts']} restarts, "
+          f"{r['iterations']} EM iterations each")
+    print(f"  tracegen.fit        {r['tracegen_fit_s']:8.1f} s   peak {r['tracegen_peak_mib']:7.1f} MiB   "
+          f"chose {r['chosen_level_states']} levels")
+    print(f"  plain hmmlearn      {r['hmmlearn_fit_s']:8.1f} s   peak {r['hmmlearn_peak_mib']:7.1f} MiB")
+    print(f"  ratio               {r['ratio']:8.2f}x (target <= 2)")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--hours", type=float, default=100.0)
+    ap.add_argument("--states", default="2..6")
+    ap.add_argument("--restarts", type=int, default=3)
+    ap.add_argument("--iterations", type=int, default=20)
+    args = ap.parse_args()
+    result = measure(args.hours, args.states, args.restarts, args.iterations)
+    print_table(result)
     print(json.dumps(result))
 
 

@@ -44,38 +44,51 @@ def best_of(repeat: int, fn) -> float:
     return min(times)
 
 
+def measure(folder: Path | None = None, repeat: int = 3) -> dict:
+    """Read ``folder`` (default: the field data, else generated files) both ways; the dict printed last."""
+    with tempfile.TemporaryDirectory(prefix="tracegen-bench-") as scratch:
+        tmp = Path(scratch)
+        folder = folder or (FIELD if FIELD.is_dir() else None)
+        generated = folder is None
+        if generated:
+            print(f"note: {FIELD} is absent; using a synthetic folder", file=sys.stderr)
+            folder = synthetic_folder(tmp / "synthetic")
+        files = sorted(folder.glob("*.csv"))
+        rows = sum(sum(1 for _ in open(f)) - 1 for f in files)
+
+        ours = best_of(repeat, lambda: [read_file(f, "csv", Labels(), split_column="segment") for f in files])
+        ref = best_of(repeat, lambda: [pd.read_csv(f) for f in files])
+        tracemalloc.start()
+        [read_file(f, "csv", Labels(), split_column="segment") for f in files]
+        peak_mib = tracemalloc.get_traced_memory()[1] / 2**20
+        tracemalloc.stop()
+        counter = iter(range(10**6))
+        store = best_of(1, lambda: Catalog.open(tmp / f"cat{next(counter)}", create=True).ingest(
+            files, "csv", Labels(), split_column="segment"))
+
+    return {"files": len(files), "rows": rows, "read_s": ours, "pandas_read_csv_s": ref,
+            "read_ratio_vs_pandas": ours / ref, "ingest_to_catalog_s": store,
+            "rows_per_s": rows / ours, "peak_traced_mib": peak_mib,
+            "folder": "generated" if generated else str(folder)}
+
+
+def print_table(result: dict) -> None:
+    r = result
+    print(f"{'files':>24}: {r['files']}\n{'rows':>24}: {r['rows']}")
+    print(f"{'tracegen read (best)':>24}: {r['read_s']:.3f} s ({r['rows_per_s']:,.0f} rows/s)")
+    print(f"{'pandas.read_csv (best)':>24}: {r['pandas_read_csv_s']:.3f} s")
+    print(f"{'ratio':>24}: {r['read_ratio_vs_pandas']:.2f}x pandas (checks, units, provenance, sha256 included)")
+    print(f"{'ingest into catalog':>24}: {r['ingest_to_catalog_s']:.3f} s")
+    print(f"{'peak traced memory':>24}: {r['peak_traced_mib']:.1f} MiB")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("folder", nargs="?", type=Path, default=None)
     ap.add_argument("--repeat", type=int, default=3)
     args = ap.parse_args()
-    tmp = Path(tempfile.mkdtemp(prefix="tracegen-bench-"))
-    folder = args.folder or (FIELD if FIELD.is_dir() else None)
-    if folder is None:
-        print(f"note: {FIELD} is absent; using a synthetic folder", file=sys.stderr)
-        folder = synthetic_folder(tmp / "synthetic")
-    files = sorted(folder.glob("*.csv"))
-    rows = sum(sum(1 for _ in open(f)) - 1 for f in files)
-
-    ours = best_of(args.repeat, lambda: [read_file(f, "csv", Labels(), split_column="segment") for f in files])
-    ref = best_of(args.repeat, lambda: [pd.read_csv(f) for f in files])
-    tracemalloc.start()
-    [read_file(f, "csv", Labels(), split_column="segment") for f in files]
-    peak_mib = tracemalloc.get_traced_memory()[1] / 2**20
-    tracemalloc.stop()
-    counter = iter(range(10**6))
-    store = best_of(1, lambda: Catalog.open(tmp / f"cat{next(counter)}", create=True).ingest(
-        files, "csv", Labels(), split_column="segment"))
-
-    result = {"files": len(files), "rows": rows, "read_s": ours, "pandas_read_csv_s": ref,
-              "read_ratio_vs_pandas": ours / ref, "ingest_to_catalog_s": store,
-              "rows_per_s": rows / ours, "peak_traced_mib": peak_mib}
-    print(f"{'files':>24}: {len(files)}\n{'rows':>24}: {rows}")
-    print(f"{'tracegen read (best)':>24}: {ours:.3f} s ({rows / ours:,.0f} rows/s)")
-    print(f"{'pandas.read_csv (best)':>24}: {ref:.3f} s")
-    print(f"{'ratio':>24}: {ours / ref:.2f}x pandas (checks, units, provenance, sha256 included)")
-    print(f"{'ingest into catalog':>24}: {store:.3f} s")
-    print(f"{'peak traced memory':>24}: {peak_mib:.1f} MiB")
+    result = measure(args.folder, args.repeat)
+    print_table(result)
     print(json.dumps(result))
 
 

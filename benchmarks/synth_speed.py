@@ -87,16 +87,8 @@ def hmmlearn_rate(k: int, n: int) -> float:
     return per_second(lambda: ref.sample(n, random_state=0), n, repeat=1)
 
 
-def main() -> None:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--quick", action="store_true", help="shorter traces, a 10^7-sample stream (under a minute)")
-    ap.add_argument("--model", default=str(ROOT / "models" / "quillon-lte.json"))
-    ap.add_argument("--stream-child", nargs=2, metavar=("SAMPLES", "OUT"), help=argparse.SUPPRESS)
-    args = ap.parse_args()
-    if args.stream_child:
-        stream_child(args.model, int(args.stream_child[0]), args.stream_child[1])
-        return
-
+def measure(quick: bool = False, model_path: str | Path = ROOT / "models" / "quillon-lte.json") -> dict:
+    """Every figure of the module docstring, as the dict printed on the last line (NaN where a part failed)."""
     from tracegen import load_model
     from tracegen.synth import model_digest, synth_one
     from tracegen.synth.bottleneck import Bottleneck
@@ -104,10 +96,11 @@ def main() -> None:
     from tracegen.synth.events import HandoverPlan
     from tracegen.synth.sampler import sample_trace, trace_generator
 
-    model = load_model(args.model)
+    model_path = str(model_path)
+    model = load_model(model_path)
     h = float(model.step_s)
-    n = 360_000 if args.quick else 3_600_000      # samples per trace: 1 h (10 h) at 10 ms
-    repeat = 3 if args.quick else 5
+    n = 360_000 if quick else 3_600_000      # samples per trace: 1 h (10 h) at 10 ms
+    repeat = 3 if quick else 5
     rng = np.random.default_rng(0)
 
     def floor() -> float:
@@ -150,12 +143,12 @@ def main() -> None:
     floors.append(floor())
     rng_rate = max(floors)
 
-    hmm = hmmlearn_rate(model.n_states, 20_000 if args.quick else 100_000)
+    hmm = hmmlearn_rate(model.n_states, 20_000 if quick else 100_000)
 
-    stream_samples = 10**7 if args.quick else 10**9
+    stream_samples = 10**7 if quick else 10**9
     out = Path("/tmp") / f"tracegen-stream-bench-{int(time.time() * 1000)}.parquet"
     try:
-        child = subprocess.run([sys.executable, __file__, "--model", args.model, "--stream-child",
+        child = subprocess.run([sys.executable, __file__, "--model", model_path, "--stream-child",
                                 str(stream_samples), str(out)], capture_output=True, text=True)
         if child.returncode:
             stream = {"samples": 0, "seconds": float("nan"), "peak_rss_mib": float("nan"),
@@ -168,7 +161,8 @@ def main() -> None:
     head = sampler[HEADLINE_STEP_S]
     at_h = sampler[h]
     result = {
-        "model": Path(args.model).name, "model_step_s": h, "samples_per_trace": n, "quick": args.quick,
+        "model": Path(model_path).name, "model_step_s": h, "model_states": model.n_states,
+        "samples_per_trace": n, "repeat": repeat, "quick": quick,
         "rng_draws_per_s": rng_rate, "hmmlearn_samples_per_s": hmm,
         "sampler_samples_per_s": {f"{s:g}": v for s, v in sampler.items()},
         "sampler_vs_rng": {f"{s:g}": v / rng_rate for s, v in sampler.items()},
@@ -186,26 +180,52 @@ def main() -> None:
         result["synth_full_error"] = full_error
     if "error" in stream:
         result["stream_error"] = stream["error"]
+    return result
 
-    print(f"model {Path(args.model).name} (step {h:g} s), {n:,} samples per trace, best of {repeat}")
+
+def print_table(result: dict) -> None:
+    r = result
+    h, rng_rate, hmm = r["model_step_s"], r["rng_draws_per_s"], r["hmmlearn_samples_per_s"]
+    core_rates, one, full = r["core_full_samples_per_s"], r["synth_one_samples_per_s"], r["synth_one_full_samples_per_s"]
+    core_full, full_error = min(core_rates.values()), r.get("synth_full_error")
+    print(f"model {r['model']} (step {h:g} s), {r['samples_per_trace']:,} samples per trace, best of {r['repeat']}")
     print(f"numpy standard_normal (floor)          {rng_rate:14,.0f} draws/s")
-    for s, v in sampler.items():
+    for key, v in r["sampler_samples_per_s"].items():
+        s = float(key)
         tag = "  <- headline synth_vs_rng" if s == HEADLINE_STEP_S else (
             "  <- headline synth_vs_hmmlearn" if s == h else "")
         print(f"sampler at {s:>5g} s                    {v:14,.0f} samples/s  {v / rng_rate:6.3f} x floor"
               f"  {v / hmm:8.0f} x hmmlearn{tag}")
-    print(f"hmmlearn GaussianHMM.sample ({model.n_states} states) {hmm:14,.0f} samples/s")
+    print(f"hmmlearn GaussianHMM.sample ({r['model_states']} states) {hmm:14,.0f} samples/s")
     for p, v in core_rates.items():
         print(f"full core at 10 ms, {p:9}          {v:14,.0f} samples/s  {v / rng_rate:6.3f} x floor"
               + ("  <- headline synth_full_vs_rng" if v == core_full else ""))
     print(f"synth_one at 10 ms (Trace + id)        {one:14,.0f} samples/s  {one / rng_rate:6.3f} x floor")
     print(f"  + cross traffic, CoDel, handovers    {full:14,.0f} samples/s  {full / rng_rate:6.3f} x floor"
           + (f"  ({full_error})" if full_error else ""))
-    print(f"stream to Parquet                      {stream['samples']:14,d} samples in {stream['seconds']:.0f} s,"
-          f" peak RSS {stream['peak_rss_mib']:.0f} MiB" + (f"  ({stream['error']})" if "error" in stream else ""))
-    print(f"targets: synth_vs_rng (10 ms) >= 0.25: {head / rng_rate:.3f}; synth_vs_hmmlearn (model step) >= 100: "
-          f"{at_h / hmm:.0f}; synth_full_vs_rng >= 0.1: {core_full / rng_rate:.3f}")
-    print(json.dumps({k: (None if isinstance(v, float) and v != v else v) for k, v in result.items()}))
+    print(f"stream to Parquet                      {r['stream_samples']:14,d} samples in {r['stream_seconds']:.0f} s,"
+          f" peak RSS {r['stream_peak_rss_mib']:.0f} MiB" + (f"  ({r['stream_error']})" if "stream_error" in r else ""))
+    print(f"targets: synth_vs_rng (10 ms) >= 0.25: {r['synth_vs_rng']:.3f}; synth_vs_hmmlearn (model step) >= 100: "
+          f"{r['synth_vs_hmmlearn']:.0f}; synth_full_vs_rng >= 0.1: {r['synth_full_vs_rng']:.3f}")
+
+
+def json_safe(result: dict) -> dict:
+    """NaN (a part that failed) as null."""
+    return {k: (None if isinstance(v, float) and v != v else v) for k, v in result.items()}
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="shorter traces, a 10^7-sample stream (under a minute)")
+    ap.add_argument("--model", default=str(ROOT / "models" / "quillon-lte.json"))
+    ap.add_argument("--stream-child", nargs=2, metavar=("SAMPLES", "OUT"), help=argparse.SUPPRESS)
+    args = ap.parse_args()
+    if args.stream_child:
+        stream_child(args.model, int(args.stream_child[0]), args.stream_child[1])
+        return
+    result = measure(args.quick, args.model)
+    print_table(result)
+    print(json.dumps(json_safe(result)))
 
 
 if __name__ == "__main__":
