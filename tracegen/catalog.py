@@ -230,7 +230,9 @@ class Catalog:
 
     def get(self, ref: str) -> Trace:
         """Load one trace by id (or unique id prefix)."""
-        tid = self.resolve(ref)
+        return self._load(self.resolve(ref))
+
+    def _load(self, tid: str) -> Trace:
         path = self.root / TRACES_DIR / f"{tid}.parquet"
         try:
             table = pq.read_table(path)
@@ -241,8 +243,8 @@ class Catalog:
 
     def traces(self, where: Sequence[str] = ()) -> Iterator[Trace]:
         """Load the traces that meet ``where``, one at a time (sorted by id)."""
-        for tid in self.ids(where):
-            yield self.get(tid)
+        for tid in self.ids(where):  # full ids from one read of the index
+            yield self._load(tid)
 
     def __len__(self) -> int:
         return len(self.index())

@@ -134,8 +134,8 @@ def synth_one(model: Any, index: int, duration_s: float, step_s: float, seed: in
 _WORKER_MODELS: dict[str, Any] = {}
 
 
-def synth_chunk(job: tuple[str, str, int, int, float, float, int, dict[str, Any]]) -> list[Trace]:
-    """A worker's task: traces ``start .. start+count-1`` of a run, the model arriving as its JSON text
+def synth_range(job: tuple[str, str, int, int, float, float, int, dict[str, Any]]) -> Iterator[Trace]:
+    """Traces ``start .. start+count-1`` of a run one at a time, the model arriving as its JSON text
     (parsed once per worker process and kept by its digest)."""
     import json
 
@@ -145,10 +145,15 @@ def synth_chunk(job: tuple[str, str, int, int, float, float, int, dict[str, Any]
     model = _WORKER_MODELS.get(digest)
     if model is None:
         model = _WORKER_MODELS[digest] = PathModel.from_dict(json.loads(text))
-    out = [synth_one(model, i, duration_s, step_s, seed, digest=digest, **options) for i in range(start, start + count)]
-    for tr in out:
-        tr.id  # the content hash travels with the trace (it is cached on it), so workers pay for it
-    return out
+    for i in range(start, start + count):
+        tr = synth_one(model, i, duration_s, step_s, seed, digest=digest, **options)
+        tr.id  # the content hash is cached on the trace, so the worker pays for it, not the caller
+        yield tr
+
+
+def synth_chunk(job: tuple[str, str, int, int, float, float, int, dict[str, Any]]) -> list[Trace]:
+    """A worker's task: the traces of :func:`synth_range` as a list (they travel back together)."""
+    return list(synth_range(job))
 
 
 def iter_synth(model: Any, count: int, duration_s: float, step_s: float, seed: int = 0, *, start: int = 0,

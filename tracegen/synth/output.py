@@ -163,12 +163,13 @@ def write_files(traces: Iterable[Trace], out_dir: str | Path, *, fmt: str = "par
 
 
 def write_chunk(job: tuple[Any, ...]) -> list[tuple[str, dict[str, Any]]]:
-    """A worker's task: synthesise a chunk of traces (``synth_chunk``) and write each to the output folder
-    (which the worker must reach: a local or shared file system); returns (file, manifest row) pairs."""
-    from . import synth_chunk
+    """A worker's task: synthesise a chunk of traces and write each to the output folder as it is made
+    (one trace in memory at a time; the worker must reach the folder: a local or shared file system);
+    returns (file, manifest row) pairs."""
+    from . import synth_range
 
     *synth_job, out_dir, fmt, name = job
-    return [(str(p), row) for p, row in (_write_one(tr, Path(out_dir), fmt, name) for tr in synth_chunk(tuple(synth_job)))]
+    return [(str(p), row) for p, row in (_write_one(tr, Path(out_dir), fmt, name) for tr in synth_range(tuple(synth_job)))]
 
 
 def synth_files(model: Any, count: int, duration_s: float, step_s: float, seed: int, out_dir: str | Path, *,
