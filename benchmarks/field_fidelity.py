@@ -1,0 +1,348 @@
+"""Field fidelity: fit on half of a real corpus's files, synthesise, and measure the gap to the other half.
+
+Usage: python benchmarks/field_fidelity.py [--quick] [--splits N] [--data DIR]
+
+DIR (default ../shared/field-data next to the checkout) holds one folder per dataset of CSV files with
+columns ``t_s``, ``bandwidth_bps`` (bit/s), ``segment`` (a reconnect inside the file: each segment is its
+own trace), ``mode`` and ``scenario`` (kept as tags). Every file is read with tracegen's ordinary CSV
+reader (``split_column="segment"``); a file is one group, so a file's segments stay on one side of a
+split. When DIR is absent the benchmark prints why and exits 0 without figures.
+
+For each of ``--splits`` seeded splits (default 5; 1 with ``--quick``: the fit at its defaults takes about
+6 minutes per split on the 2-core machine, so 3 splits would not fit in 10 minutes) the files are cut into two disjoint
+halves A and B (A gets the extra file of an odd count). Then:
+
+* tracegen: ``tracegen.fit(A)`` with its defaults, ``tracegen.synth`` of as many traces as B has, each
+  as long as its B counterpart, at the model's step (one call per distinct length, ``start=`` running on
+  so every trace has its own index and stream);
+* baselines, also one trace per B trace and as long: (a) i.i.d. resampling of all of A's bandwidth
+  samples; (b) a block bootstrap of random 60 s blocks of A's traces (a trace, then a start, uniformly;
+  traces shorter than a block are not used) glued end to end; (c) plain hmmlearn ``GaussianHMM``
+  (library defaults: diagonal covariance, default EM iterations) on A's log bandwidth with zeros clamped
+  to the 10 kbit/s outage floor, 2..8 states chosen by hmmlearn's BIC, one ``sample`` per trace, exp'd
+  back;
+* each set scored with ``tracegen.coverage(B, set, seed=split_seed, n_permutations=0)`` at the default
+  10, 60 and 300 s scales (its own group splits of B give the noise floor).
+
+Nothing is chosen on B: the model, its state count and the baselines see A only.
+
+Printed: a table per split and the medians over splits (overall gap ratio = the worst scale, per-scale
+ratios, the worst feature and its ratio) for tracegen and each baseline, the time of each step, then as
+the last line one JSON object with the medians, every per-split figure and the targets (median gap ratio
+<= 1.5 at every scale, >= 3x lower than plain hmmlearn, lower than the block bootstrap at 300 s, no
+feature's median ratio above 3) and whether each is met. The run only reports: a missed target is not an
+error.
+
+The NYU-METS LTE traces in ../shared/field-data/nyu-mets-lte are used under the Open Database License 1.0
+(NYU Metropolitan Mobile Bandwidth Trace dataset; L. Mei et al., "Realtime Mobile Bandwidth Prediction
+using LSTM Neural Networks", PAM 2019); no part of them is shipped with tracegen.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+import time
+import warnings
+from collections import defaultdict
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+FIELD = ROOT.parent / "shared" / "field-data"
+READ_OPTIONS = {"time_column": "t_s", "bandwidth_column": "bandwidth_bps", "bandwidth_unit": "bps",
+                "split_column": "segment", "tag_columns": ("mode", "scenario")}
+BLOCK_S = 60.0
+HMM_STATES = range(2, 9)
+SETS = ("tracegen", "plain_hmm", "block", "iid")
+TARGET_SCALE_RATIO = 1.5
+TARGET_HMM_FACTOR = 3.0
+TARGET_FEATURE_RATIO = 3.0
+
+
+# --- data ----------------------------------------------------------------------------------------------
+def dataset_folders(data: Path) -> list[Path]:
+    """Folders of CSV files under ``data`` (``data`` itself when it holds CSV files directly)."""
+    if any(data.glob("*.csv")):
+        return [data]
+    return sorted(p for p in data.iterdir() if p.is_dir() and any(p.glob("*.csv")))
+
+
+def read_dataset(folder: Path) -> dict[str, list]:
+    """Every CSV file of ``folder`` through tracegen's CSV reader: {file stem: [one Trace per segment]}."""
+    from tracegen.ingest import read_file
+
+    return {f.stem: read_file(f, "csv", **READ_OPTIONS) for f in sorted(folder.glob("*.csv"))}
+
+
+def split_files(names: list[str], seed: int) -> tuple[list[str], list[str]]:
+    order = np.random.default_rng(seed).permutation(len(names))
+    cut = (len(names) + 1) // 2
+    return sorted(names[i] for i in order[:cut]), sorted(names[i] for i in order[cut:])
+
+
+def _synthetic(bandwidth: np.ndarray, step_s: float, name: str, index: int):
+    from tracegen import Trace
+
+    n = len(bandwidth)
+    return Trace.from_columns(np.arange(n) * step_s, bandwidth_bps=bandwidth, origin="synthetic",
+                              source=f"{name}#{index}", group=f"{name}-{index}")
+
+
+# --- the sets compared with B ----------------------------------------------------------------------------
+def tracegen_set(model: Any, lengths: list[int], seed: int) -> list:
+    import tracegen
+
+    step = float(model.step_s)
+    out: list = [None] * len(lengths)
+    by_length: dict[int, list[int]] = defaultdict(list)
+    for i, n in enumerate(lengths):
+        by_length[n].append(i)
+    start = 0
+    for n in sorted(by_length):
+        where = by_length[n]
+        made = tracegen.synth(model, len(where), n * step, step, seed=seed, start=start, name="field-fidelity")
+        for i, tr in zip(where, made):
+            out[i] = tr
+        start += len(where)
+    return out
+
+
+def iid_set(a: list, lengths: list[int], step_s: float, seed: int) -> list:
+    pool = np.concatenate([np.asarray(t["bandwidth_bps"], float) for t in a])
+    pool = pool[np.isfinite(pool)]
+    rng = np.random.default_rng([seed, 1])
+    return [_synthetic(rng.choice(pool, size=n), step_s, "iid", i) for i, n in enumerate(lengths)]
+
+
+def block_set(a: list, lengths: list[int], step_s: float, seed: int) -> list:
+    block = round(BLOCK_S / step_s)
+    sources = [np.asarray(t["bandwidth_bps"], float) for t in a if len(t) >= block]
+    rng = np.random.default_rng([seed, 2])
+    out = []
+    for i, n in enumerate(lengths):
+        pieces, have = [], 0
+        while have < n:
+            src = sources[int(rng.integers(len(sources)))]
+            s = int(rng.integers(len(src) - block + 1))
+            pieces.append(src[s:s + block])
+            have += block
+        out.append(_synthetic(np.concatenate(pieces)[:n], step_s, "block", i))
+    return out
+
+
+def plain_hmm_set(a: list, lengths: list[int], step_s: float, seed: int) -> tuple[list, dict]:
+    from hmmlearn.hmm import GaussianHMM
+
+    from tracegen.trace import OUTAGE_FLOOR_BPS
+
+    xs = []
+    for t in a:
+        bw = np.asarray(t["bandwidth_bps"], float)
+        bw = bw[np.isfinite(bw)]
+        xs.append(np.log(np.maximum(bw, OUTAGE_FLOOR_BPS)))
+    x = np.concatenate(xs)[:, None]
+    lens = [len(v) for v in xs]
+    fits = {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # hmmlearn's convergence chatter at its default 10 iterations
+        for k in HMM_STATES:
+            m = GaussianHMM(n_components=k, random_state=seed)
+            m.fit(x, lens)
+            fits[k] = (m.bic(x, lens), m)
+    best = min(fits, key=lambda k: fits[k][0])
+    model = fits[best][1]
+    rng = np.random.RandomState(seed)
+    out = []
+    for i, n in enumerate(lengths):
+        obs, _ = model.sample(n, random_state=rng)
+        out.append(_synthetic(np.exp(obs[:, 0]), step_s, "plain-hmm", i))
+    return out, {"states": best, "bic": {str(k): float(v[0]) for k, v in fits.items()}}
+
+
+def score(b: list, candidate: list, seed: int) -> dict:
+    import tracegen
+
+    res = tracegen.coverage(b, candidate, seed=seed, n_permutations=0, progress=False)
+    g = res.data["gap_ratio"]
+    feats = {f: v for f, v in g["by_feature"].items() if v is not None}
+    worst = max(feats, key=feats.get) if feats else None
+    return {"overall": g["overall"], "by_scale": dict(g["by_scale"]), "by_feature": feats,
+            "by_feature_scale": dict(g["by_feature_scale"]), "worst_feature": worst,
+            "worst_feature_ratio": feats.get(worst) if worst else None, "temporal": dict(g.get("temporal", {})),
+            "noise_floor_splits": res.data["noise_floor"]["splits"]}
+
+
+# --- one split ------------------------------------------------------------------------------------------
+def run_split(files: dict[str, list], seed: int) -> dict:
+    import tracegen
+
+    names_a, names_b = split_files(sorted(files), seed)
+    a = [t for n in names_a for t in files[n]]
+    b = [t for n in names_b for t in files[n]]
+    lengths = [len(t) for t in b]
+    times: dict[str, float] = {}
+    t0 = time.perf_counter()
+    model = tracegen.fit(a, progress=False)
+    times["fit"] = time.perf_counter() - t0
+    step = float(model.step_s)
+    sets: dict[str, list] = {}
+    extra: dict[str, Any] = {"model_states": int(model.n_states)}
+    t0 = time.perf_counter()
+    sets["tracegen"] = tracegen_set(model, lengths, seed)
+    times["synth"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    sets["plain_hmm"], extra["plain_hmm"] = plain_hmm_set(a, lengths, step, seed)
+    times["plain_hmm_fit_sample"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    sets["block"] = block_set(a, lengths, step, seed)
+    sets["iid"] = iid_set(a, lengths, step, seed)
+    times["block_iid"] = time.perf_counter() - t0
+    scores = {}
+    for name in SETS:
+        t0 = time.perf_counter()
+        scores[name] = score(b, sets[name], seed)
+        times[f"coverage_{name}"] = time.perf_counter() - t0
+    synth_len = [len(t) for t in sets["tracegen"]]
+    return {"seed": seed, "files_a": names_a, "files_b": names_b, "traces_a": len(a), "traces_b": len(b),
+            "hours_a": sum(len(t) * t.step_s for t in a) / 3600, "hours_b": sum(len(t) * t.step_s for t in b) / 3600,
+            "step_s": step, "lengths_match": synth_len == lengths, "scores": scores, "times_s": times, **extra}
+
+
+# --- summary --------------------------------------------------------------------------------------------
+def _median(values: list) -> float | None:
+    vals = [v for v in values if v is not None and math.isfinite(v)]
+    return float(np.median(vals)) if vals else None
+
+
+def summarise(splits: list[dict]) -> dict:
+    med: dict[str, Any] = {}
+    for name in SETS:
+        sc = [s["scores"][name] for s in splits]
+        scales = sorted({k for x in sc for k in x["by_scale"]}, key=float)
+        feats = sorted({f for x in sc for f in x["by_feature"]})
+        by_feature = {f: _median([x["by_feature"].get(f) for x in sc]) for f in feats}
+        worst = max((f for f in by_feature if by_feature[f] is not None), key=lambda f: by_feature[f], default=None)
+        med[name] = {"overall": _median([x["overall"] for x in sc]),
+                     "by_scale": {k: _median([x["by_scale"].get(k) for x in sc]) for k in scales},
+                     "by_feature": by_feature, "worst_feature": worst,
+                     "worst_feature_ratio": by_feature.get(worst) if worst else None,
+                     "worst_feature_ratio_per_split": [x["worst_feature_ratio"] for x in sc]}
+    return med
+
+
+def targets(med: dict) -> dict:
+    ours, hmm, block = med["tracegen"], med["plain_hmm"], med["block"]
+    scale_ok = bool(ours["by_scale"]) and all(v is not None and v <= TARGET_SCALE_RATIO for v in ours["by_scale"].values())
+    factor = (hmm["overall"] / ours["overall"]) if ours["overall"] and hmm["overall"] is not None else None
+    o300, b300 = ours["by_scale"].get("300"), block["by_scale"].get("300")
+    wf = ours["worst_feature_ratio"]
+    return {
+        "gap_ratio_every_scale_le_1_5": {"value": ours["by_scale"], "target": f"<= {TARGET_SCALE_RATIO}", "met": scale_ok},
+        "plain_hmm_over_tracegen_ge_3": {"value": factor, "target": f">= {TARGET_HMM_FACTOR}",
+                                         "met": factor is not None and factor >= TARGET_HMM_FACTOR},
+        "tracegen_below_block_at_300s": {"value": [o300, b300], "target": "tracegen < block at 300 s",
+                                         "met": o300 is not None and b300 is not None and o300 < b300},
+        "no_feature_above_3": {"value": wf, "feature": ours["worst_feature"], "target": f"<= {TARGET_FEATURE_RATIO}",
+                               "met": wf is not None and wf <= TARGET_FEATURE_RATIO},
+    }
+
+
+def _f(v: Any) -> str:
+    return "-" if v is None else f"{v:.2f}"
+
+
+def print_rows(title: str, rows: dict, scales: list[str]) -> None:
+    print(title)
+    head = f"  {'set':<10} {'overall':>8} " + " ".join(f"{s + ' s':>8}" for s in scales) + "  worst feature"
+    print(head)
+    for name in SETS:
+        r = rows[name]
+        print(f"  {name:<10} {_f(r['overall']):>8} " + " ".join(f"{_f(r['by_scale'].get(s)):>8}" for s in scales)
+              + f"  {r['worst_feature'] or '-'} {_f(r['worst_feature_ratio'])}")
+
+
+def measure(data: Path = FIELD, n_splits: int = 5) -> dict | None:
+    folders = dataset_folders(data) if data.is_dir() else []
+    if not folders:
+        print(f"field fidelity: skipped, no field data at {data} (a folder of dataset folders of CSV files)")
+        return None
+    out: dict[str, Any] = {"datasets": {}}
+    for folder in folders:
+        t0 = time.perf_counter()
+        files = read_dataset(folder)
+        read_s = time.perf_counter() - t0
+        n_traces = sum(len(v) for v in files.values())
+        print(f"== {folder.name}: {len(files)} files, {n_traces} traces (one per segment), "
+              f"{sum(len(t) * t.step_s for v in files.values() for t in v) / 3600:.1f} h, read in {read_s:.2f} s")
+        splits = []
+        for i in range(n_splits):
+            seed = 1000 + i
+            t0 = time.perf_counter()
+            s = run_split(files, seed)
+            s["total_s"] = time.perf_counter() - t0
+            splits.append(s)
+            scales = sorted({k for x in s["scores"].values() for k in x["by_scale"]}, key=float)
+            print_rows(f"split {i + 1}/{n_splits} (seed {seed}): A {len(s['files_a'])} files / {s['traces_a']} traces "
+                       f"/ {s['hours_a']:.1f} h, B {len(s['files_b'])} files / {s['traces_b']} traces / "
+                       f"{s['hours_b']:.1f} h; tracegen model {s['model_states']} states, plain HMM "
+                       f"{s['plain_hmm']['states']} states", s["scores"], scales)
+            if not s["lengths_match"]:
+                print("  note: a synthesised trace's length differs from its B counterpart")
+            print("  time: " + ", ".join(f"{k} {v:.1f} s" for k, v in s["times_s"].items())
+                  + f"; split {s['total_s']:.1f} s", flush=True)
+        med = summarise(splits)
+        scales = sorted({k for x in med.values() for k in x["by_scale"]}, key=float)
+        print_rows(f"medians over {n_splits} splits", med, scales)
+        tg = targets(med)
+        print("targets:")
+        for k, v in tg.items():
+            print(f"  {k:<32} {'met' if v['met'] else 'NOT met'}  ({v['value']})")
+        out["datasets"][folder.name] = {"files": len(files), "traces": n_traces, "read_s": read_s,
+                                        "medians": med, "targets": tg, "splits": splits}
+    first = out["datasets"][folders[0].name]
+    med = first["medians"]
+    out.update({
+        "dataset": folders[0].name, "n_splits": n_splits,
+        "gap_ratio": med["tracegen"]["overall"], "gap_ratio_by_scale": med["tracegen"]["by_scale"],
+        "plain_hmm_ratio": med["plain_hmm"]["overall"], "block_ratio": med["block"]["overall"],
+        "iid_ratio": med["iid"]["overall"],
+        "plain_hmm_ratio_by_scale": med["plain_hmm"]["by_scale"], "block_ratio_by_scale": med["block"]["by_scale"],
+        "iid_ratio_by_scale": med["iid"]["by_scale"],
+        "worst_feature": med["tracegen"]["worst_feature"], "worst_feature_ratio": med["tracegen"]["worst_feature_ratio"],
+        "gap_ratio_by_feature": med["tracegen"]["by_feature"],
+        "per_split": [{"seed": s["seed"], "files_b": s["files_b"],
+                       **{name: {k: s["scores"][name][k] for k in ("overall", "by_scale", "worst_feature",
+                                                                   "worst_feature_ratio", "by_feature")}
+                          for name in SETS}, "times_s": s["times_s"]} for s in first["splits"]],
+        "targets": first["targets"], "all_targets_met": all(v["met"] for v in first["targets"].values()),
+    })
+    return out
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="1 split instead of 5 (the fit keeps its defaults)")
+    ap.add_argument("--splits", type=int, default=None, help="number of seeded A/B splits (default 5, 1 with --quick)")
+    ap.add_argument("--data", type=Path, default=FIELD, help="folder of dataset folders (default ../shared/field-data)")
+    args = ap.parse_args()
+    n = args.splits if args.splits is not None else (1 if args.quick else 5)
+    if n < 1:
+        ap.error("--splits must be at least 1")
+    start = time.perf_counter()
+    out = measure(args.data, n)
+    if out is None:
+        print(json.dumps({"skipped": f"no field data at {args.data}"}))
+        return
+    out["quick"] = bool(args.quick)
+    out["total_s"] = time.perf_counter() - start
+    print(f"total {out['total_s']:.0f} s")
+    print(json.dumps(out, default=float))
+
+
+if __name__ == "__main__":
+    sys.exit(main())
