@@ -156,8 +156,16 @@ class _HandoverLaw:
     threshold_s: float
 
 
+def _detected_only(model: Any, plan: HandoverPlan | None) -> bool:
+    """Events the fit read off the bandwidth itself (no cell labels) are already in the state path: the
+    outage state holds their breaks and the chain their level changes. Drawn again on top by default,
+    they doubled the outage time of a model fitted to a field corpus without cell labels (11 % against
+    the data's 5.4 %). So they are drawn only when a HandoverPlan asks for events."""
+    return plan is None and model.events is not None and model.events.source == "detected"
+
+
 def _law(model: Any, plan: HandoverPlan | None) -> _HandoverLaw:
-    ev = model.events
+    ev = None if _detected_only(model, plan) else model.events
     plan = plan or HandoverPlan()
     rate = plan.rate_per_s
     if rate is None:
@@ -213,6 +221,7 @@ def draw_events(model: Any, plan: HandoverPlan | None, tilt: TiltPlan, rng: np.r
     """
     law = _law(model, plan)
     _check_law(law, tilt)  # also here: the sampler can be called without tracegen.synth.check_run
+    detected_only = _detected_only(model, plan)
     plan = plan or HandoverPlan()
     llr = 0.0
     # handover times: Poisson (rate tilted) plus the explicit ones; the uniform times cancel in p/q
@@ -263,7 +272,7 @@ def draw_events(model: Any, plan: HandoverPlan | None, tilt: TiltPlan, rng: np.r
     if plan.loss_burst_s > 0 and n:
         bursts = np.stack([resume, resume + plan.loss_burst_s, np.full(n, plan.loss_burst_loss)], axis=1)
 
-    ev = model.events
+    ev = None if detected_only else model.events
     if ev is not None and ev.outage_rate_per_hour > 0:
         outage_states = [i for i, s in enumerate(model.states) if s.kind == "outage"]
         if ev.outage_mu_log_s is not None or outage_states:

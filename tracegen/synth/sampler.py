@@ -45,7 +45,8 @@ schema reads rates and points. Any step >= ``MIN_STEP_S`` works, a multiple of h
    event time; in one sample the earliest event wins.
 
 Note that the fitted outage state already holds the outages the fit saw, handover interruptions
-included, so events add outage time on top of it.
+included, so events add outage time on top of it. Events the fit detected in the bandwidth itself (no
+cell labels) are therefore not drawn unless a HandoverPlan asks for events (events.py).
 
 Randomness: each call consumes only ``rng``. ``sample_traces`` gives trace i the Generator
 ``SeedSequence(seed, spawn_key=(i, 0))`` (the sampler part of ``tracegen.synth.trace_rng``), so trace i
