@@ -272,3 +272,36 @@ def test_bad_input_is_refused():
         fit_ar([], 1)
     with pytest.raises(TracegenError, match="variance"):
         fit_ar([np.zeros(20)], 0)
+
+
+def test_variance_matching_gives_the_stationary_variance_of_every_sample():
+    from tracegen.fit.ar import ar_loglik, fit_ar, with_stationary_variance
+
+    rng = np.random.default_rng(31)
+    calm = [rng.normal(0, 0.1, 200) for _ in range(5)]          # long, calm visits: what least squares sees
+    wild = [rng.normal(0, 1.0, 1) for _ in range(300)]          # one-sample visits: held back by AR(1)
+    fit = fit_ar(calm + wild, 1)
+    matched = with_stationary_variance(fit, calm + wild)
+    everything = np.concatenate(calm + wild)
+    # AR(1) stationary variance sigma^2 / (1 - phi^2) (Box & Jenkins, Time Series Analysis, ch. 3)
+    phi = matched.coefs[0]
+    assert matched.sigma2 / (1 - phi * phi) == pytest.approx(float(np.mean(everything**2)), rel=1e-12)
+    assert matched.coefs == fit.coefs and matched.order == fit.order
+    assert matched.sigma2 > 10 * fit.sigma2
+    assert matched.loglik == pytest.approx(ar_loglik(calm + wild, matched))
+    assert matched.aic == pytest.approx(-2 * matched.loglik + 4)
+
+
+def test_variance_matching_changes_little_when_the_model_is_right():
+    from tracegen.fit.ar import fit_ar, with_stationary_variance
+
+    rng = np.random.default_rng(32)
+    e = rng.normal(0, 0.2, 50_000)
+    x = np.empty_like(e)
+    x[0] = e[0]
+    for t in range(1, x.size):   # AR(1), phi = 0.6: stationary variance 0.04 / 0.64
+        x[t] = 0.6 * x[t - 1] + e[t]
+    fit = fit_ar([x], 1)
+    matched = with_stationary_variance(fit, [x])
+    assert matched.stationary_variance == pytest.approx(0.04 / 0.64, rel=0.03)
+    assert matched.sigma2 == pytest.approx(fit.sigma2, rel=0.03)

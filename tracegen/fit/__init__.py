@@ -5,7 +5,8 @@ The pipeline, for each candidate number of level states K:
    restarts (levels.py); outage samples are an explicit state, not part of the HMM;
 2. Viterbi decoding into dwell segments; per state a sojourn-time family (dwell.py), jump
    probabilities between different states (zero diagonal), and an AR(p) model of the log-bandwidth
-   residual around the state's mean with p chosen by AIC (ar.py);
+   residual around the state's mean with p chosen by AIC and its variance matched to every visit's
+   samples, short visits included (ar.py);
 3. the complete-data log-likelihood of the whole semi-Markov model given the decoded path (dwell times,
    jumps, AR residuals) and its BIC: the classification (integrated completed) likelihood of Biernacki,
    Celeux and Govaert (2000). K is chosen by that full-model BIC by default, because the HMM's own BIC
@@ -24,7 +25,7 @@ from .. import __version__
 from ..errors import TracegenError
 from ..progress import bar
 from ..trace import OUTAGE_FLOOR_BPS, Trace
-from .ar import ARFit, ar_loglik, select_ar
+from .ar import ARFit, ar_loglik, select_ar, with_stationary_variance
 from .dwell import DwellFit, fit_dwell
 from .events import fit_events
 from .levels import HmmFit, Segments, fit_hmm, jump_matrix, segments, state_paths
@@ -96,7 +97,7 @@ def _candidate(prep: Prepared, hmm: HmmFit, with_outage: bool, max_ar_order: int
             resid.append(x[:, 0] - hmm.means[j, 0])
             if x.shape[1] > 1:
                 rtt_terms.append(x)
-        fit = select_ar(resid, max_order=max_ar_order)[0]
+        fit = with_stationary_variance(select_ar(resid, max_order=max_ar_order)[0], resid)
         ars.append(fit)
         head = np.concatenate([r[: fit.order] for r in resid]) if fit.order else np.zeros(0)
         var0 = fit.stationary_variance

@@ -386,6 +386,33 @@ def ar_loglik(segments: Sequence[np.ndarray], fit: ARFit, *, hold_back_steps: in
     return _gauss_loglik(float(resid @ resid), y.size, fit.sigma2)
 
 
+def with_stationary_variance(fit: ARFit, segments: Sequence[np.ndarray]) -> ARFit:
+    """``fit`` with sigma2 rescaled so that its stationary variance is the mean square of *all* the
+    segments' values (loglik and aic recomputed).
+
+    Least squares only sees the rows after each segment's hold-back, so a state whose short visits are
+    its wild ones (a deep-fade state entered for a second or two) gets the variance of its long, calm
+    visits; a sampler restarting every visit from that variance makes the short visits too calm.
+    Matching the second moment over every sample keeps the coefficients and gives each visit the
+    state's own spread (a method-of-moments step, as Yule–Walker's gamma_0)."""
+    segs = _as_segments(segments)
+    total = sum(s.size for s in segs)
+    if total == 0:
+        return fit
+    target = float(sum(float(s @ s) for s in segs)) / total
+    if not target > 0:
+        return fit
+    sigma2 = fit.sigma2 * target / fit.stationary_variance
+    rescaled = ARFit(fit.order, fit.coefs, sigma2, fit.n_eff, fit.loglik, fit.aic, fit.stationarity_adjusted,
+                     fit.method)
+    try:
+        ll = ar_loglik(segs, rescaled)
+    except TracegenError:  # no row after the hold-back: the likelihood stays the one of the fit
+        return rescaled
+    return ARFit(fit.order, fit.coefs, sigma2, fit.n_eff, ll, -2.0 * ll + 2.0 * (fit.order + 1),
+                 fit.stationarity_adjusted, fit.method)
+
+
 def _usable_rows(segments: list[np.ndarray], hold: int) -> int:
     return int(sum(max(s.size - hold, 0) for s in segments))
 
