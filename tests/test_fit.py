@@ -86,7 +86,7 @@ def test_model_file_round_trip_and_same_bytes(recovered, tmp_path):
     back = load(path)
     assert back.to_json() == model.to_json()
     data = json.loads(path.read_text())
-    assert data["format"] == "tracegen-path-model" and data["schema_version"] == 1
+    assert data["format"] == "tracegen-path-model" and data["schema_version"] == 2
     assert [s["level_bps"] for s in data["states"]] == sorted(s["level_bps"] for s in data["states"])
     assert all("mean_dwell_s" in s for s in data["states"])
     again = tracegen.fit(traces, states=range(2, 5), restarts=2, seed=1)
@@ -180,3 +180,24 @@ def test_cli_fit_and_show(tmp_path, recovered):
     (tmp_path / "broken.json").write_text("[]")
     r = runner.invoke(cli, ["model", "show", str(tmp_path / "broken.json")], obj={})
     assert r.exit_code == 2 and "JSON object" in r.output
+
+
+def test_cli_slow_block_option(tmp_path, recovered):
+    traces, _ = recovered
+    from tracegen.catalog import Catalog
+
+    root = tmp_path / "cat"
+    Catalog.open(root, create=True).add(traces[:6])
+    runner = CliRunner()
+    out = tmp_path / "m.json"
+    r = runner.invoke(cli, ["fit", "--catalog", str(root), "--states", "3", "--restarts", "1", "--slow-block", "none",
+                            "--out", str(out)], obj={})
+    assert r.exit_code == 0, r.output
+    assert "slow part: none" in r.output and json.loads(out.read_text())["report"]["slow_block_s"] is None
+    bad = tmp_path / "bad.json"
+    r = runner.invoke(cli, ["fit", "--catalog", str(root), "--states", "3", "--slow-block", "soon", "--out", str(bad)],
+                      obj={})
+    assert r.exit_code == 2 and "--slow-block" in r.output and not bad.exists()
+    r = runner.invoke(cli, ["fit", "--catalog", str(root), "--states", "3", "--slow-block", "1s", "--out", str(bad)],
+                      obj={})
+    assert r.exit_code == 2 and "slow_block_s" in r.output and not bad.exists()

@@ -21,9 +21,11 @@ from .fit.ar import ARFit
 from .fit.dwell import DwellFit
 from .fit.events import EventModel
 from .fit.loss import GilbertElliott
+from .fit.slow import SlowFit
 
 FORMAT_NAME = "tracegen-path-model"
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
+READABLE_VERSIONS = (1, 2)   # version 1 files are version 2 without a slow part
 
 
 class ModelError(TracegenError):
@@ -114,6 +116,7 @@ class PathModel:
     events: EventModel | None
     report: Mapping[str, Any] = field(default_factory=dict)
     tracegen_version: str = ""
+    slow: SlowFit | None = None            # per-trace offset and drift over minutes (fit/slow.py)
 
     @property
     def n_states(self) -> int:
@@ -128,7 +131,8 @@ class PathModel:
                 "step_s": self.step_s, "outage_floor_bps": self.outage_floor_bps, "features": list(self.features),
                 "states": [s.to_dict() for s in self.states], "jumps": [list(r) for r in self.jumps],
                 "loss": None if self.loss is None else self.loss.to_dict(),
-                "events": None if self.events is None else self.events.to_dict(), "report": dict(self.report)}
+                "events": None if self.events is None else self.events.to_dict(), "report": dict(self.report),
+                "slow": None if self.slow is None else self.slow.to_dict()}
 
     def to_json(self) -> str:
         """Canonical JSON text: sorted keys, so the same model always gives the same bytes."""
@@ -149,8 +153,9 @@ class PathModel:
         if d.get("format") != FORMAT_NAME:
             raise ModelError(f"format is {d.get('format')!r}, not {FORMAT_NAME!r}", field="format",
                              hint="is this a tracegen model file?")
-        if d.get("schema_version") != SCHEMA_VERSION:
-            raise ModelError(f"schema version {d.get('schema_version')!r} is not {SCHEMA_VERSION}",
+        version = d.get("schema_version")
+        if isinstance(version, bool) or version not in READABLE_VERSIONS:
+            raise ModelError(f"schema version {version!r} is not one of {list(READABLE_VERSIONS)}",
                              field="schema_version", hint="refit with this tracegen version")
         step = _finite(d.get("step_s"), "step_s", positive=True)
         floor = _finite(d.get("outage_floor_bps"), "outage_floor_bps")
@@ -189,8 +194,12 @@ class PathModel:
         report = d.get("report") or {}
         if not isinstance(report, Mapping):
             raise ModelError("must be an object", field="report")
+        try:
+            slow = None if d.get("slow") is None else SlowFit.from_dict(d["slow"])
+        except TracegenError as exc:
+            raise ModelError(exc.message, field=exc.field or "slow") from None
         return cls(step, floor, features, states, tuple(tuple(r) for r in j.tolist()), loss, events, report,
-                   str(d.get("tracegen_version", "")))
+                   str(d.get("tracegen_version", "")), slow)
 
     def summary_text(self) -> str:
         """A readable summary: the states table, loss and events."""
@@ -216,6 +225,13 @@ class PathModel:
             lines.append("loss: not measured in the selection")
         if self.events is not None:
             lines.append("events: " + self.events.summary())
+        if self.slow is not None:
+            w = self.slow
+            lines.append(f"slow part (added to every level): per-trace offset sd {math.sqrt(w.between_var):.2f}, "
+                         f"drift sd {math.sqrt(w.drift_var):.2f} over {w.drift_time_s:.0f} s (log bit/s; "
+                         f"{w.block_s:g} s blocks)")
+        else:
+            lines.append("slow part: none")
         table = r.get("selection_table") or []
         if table:
             lines.append("state-count selection:")

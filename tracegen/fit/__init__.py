@@ -1,6 +1,10 @@
 """Fitting a path model to traces: ``tracegen.fit(traces, ...) -> PathModel``.
 
-The pipeline, for each candidate number of level states K:
+First the slow part (slow.py): a per-trace offset and an Ornstein–Uhlenbeck drift over minutes, fitted
+by maximum likelihood on one-minute block means and kept when it beats "none" by BIC; its smoothed
+estimate is taken out of the log-bandwidth, so the level states below model what is left.
+
+Then, for each candidate number of level states K:
 1. a Gaussian HMM on log-bandwidth (joint with log-RTT on request) by Baum–Welch, best of several seeded
    restarts (levels.py); outage samples are an explicit state, not part of the HMM;
 2. Viterbi decoding into dwell segments; per state a sojourn-time family (dwell.py), jump
@@ -31,6 +35,7 @@ from .events import fit_events
 from .levels import HmmFit, Segments, fit_hmm, jump_matrix, segments, state_paths
 from .loss import fit_gilbert_elliott, loss_by_state
 from .prepare import OUTAGE, Prepared, prepare
+from .slow import DEFAULT_BLOCK_S, SlowFit, fit_slow, remove_slow
 
 if TYPE_CHECKING:
     from ..model import PathModel
@@ -157,11 +162,14 @@ def fit_state_count(job: tuple[Any, ...]) -> tuple[int, Any, Any, TracegenError 
 def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int] = DEFAULT_STATES,
         step_s: float | None = None, with_rtt: bool = False, restarts: int = 3, seed: int = 0,
         max_iter: int = 100, tol: float = 1e-3, criterion: str = "full-bic", max_ar_order: int = 5,
-        floor_bps: float = OUTAGE_FLOOR_BPS, selection: Sequence[str] = (),
-        progress: bool | None = None, workers: int | None = 1, cluster: str | None = None) -> "PathModel":
+        floor_bps: float = OUTAGE_FLOOR_BPS, slow_block_s: float | None = DEFAULT_BLOCK_S,
+        selection: Sequence[str] = (), progress: bool | None = None, workers: int | None = 1,
+        cluster: str | None = None) -> "PathModel":
     """Fit a path model to measured traces (see the module docstring for the method).
 
     ``states`` is the number of level states or a range to choose from (outages add a state of their own);
+    ``slow_block_s`` is the block length of the slow part (per-trace offset and drift over minutes, slow.py),
+    fitted first and taken out of the data the level states see; None leaves it out.
     ``selection`` only goes into the report; ``tol`` is the EM's log-likelihood tolerance. ``workers``
     local processes or a Dask ``cluster`` (tracegen.parallel) fit the state counts side by side, each
     with its own restarts and seeds as in one process. Same traces and seed give the same model bytes.
@@ -177,6 +185,11 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
         raise TracegenError("restarts and iterations must be at least 1", field="restarts")
     counts = _state_range(states)
     prep = prepare(traces, step_s=step_s, with_rtt=with_rtt, floor_bps=floor_bps)
+    slow: SlowFit | None = None
+    if slow_block_s is not None:
+        slow = fit_slow(prep, slow_block_s)
+        if slow is not None:
+            prep = remove_slow(prep, slow)
     with_outage = any(bool(np.any(k == OUTAGE)) for k in prep.kinds)
     if len(prep.features) == 0:
         raise TracegenError("the selection has no sample with known, non-zero bandwidth", field="selection")
@@ -208,7 +221,7 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
     shift = 1 if with_outage else 0
     known = np.concatenate([p[p >= 0] for p in cand.paths])
     share = np.bincount(known, minlength=chosen + shift) / known.size
-    bw = np.concatenate([np.asarray(t["bandwidth_bps"]) for t in prep.traces])
+    bw = _level_bandwidth(prep)
     rtt = np.concatenate([np.asarray(t["rtt_ms"]) for t in prep.traces])
     path = np.concatenate(cand.paths)
     loss_means = loss_by_state([np.asarray(t["loss"]) for t in prep.traces], cand.paths, chosen + shift)
@@ -244,8 +257,23 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
                                                    f"{chosen} states; raise --max-iter"],
     }
     features = ("log_bandwidth_bps", "log_rtt_ms") if with_rtt else ("log_bandwidth_bps",)
+    report["slow"] = None if slow is None else slow.to_dict()
+    report["slow_block_s"] = slow_block_s
     return PathModel(prep.step_s, floor_bps, features, tuple(built),
-                     tuple(tuple(float(v) for v in row) for row in cand.jumps), loss, events, report, __version__)
+                     tuple(tuple(float(v) for v in row) for row in cand.jumps), loss, events, report, __version__,
+                     slow)
+
+
+def _level_bandwidth(prep: Prepared) -> np.ndarray:
+    """All traces' bandwidth as the level states see it (the slow part taken out), NaN off level runs."""
+    out, offset = [], 0
+    for kind, index in zip(prep.kinds, prep.run_index):
+        bw = np.full(kind.size, np.nan)
+        for a, b in index:
+            bw[a:b] = np.exp(prep.features[offset:offset + b - a, 0])
+            offset += b - a
+        out.append(bw)
+    return np.concatenate(out)
 
 
 def _columns(tr: Trace, path: np.ndarray) -> dict[str, Any]:

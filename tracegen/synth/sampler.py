@@ -25,7 +25,10 @@ schema reads rates and points. Any step >= ``MIN_STEP_S`` works, a multiple of h
    concatenation; each segment's start is then corrected by superposition (the filter is linear): the
    zero-input response of (its own pre-sample values - the p values the concatenated run had before
    it) is added, which gives exactly the restarted process. A state without an ARFit gets i.i.d.
-   N(0, cov[0][0]). Finer base samples hold the tick's value. Outage state: bandwidth exactly 0.
+   N(0, cov[0][0]). A model with a slow part (fit/slow.py) adds, per trace, one offset (a fitted
+   trace's, drawn by its hours, plus jitter) and a stationary Ornstein–Uhlenbeck drift at every tick
+   (an exact AR(1) at h, one lfilter). Finer base samples hold the tick's value. Outage state:
+   bandwidth exactly 0.
 3. RTT, per tick and held like the level (the model says nothing below h). Joint models: log RTT from
    the state's 2x2 covariance given the tick's log-bandwidth residual (conditional Gaussian: slope
    cov01/cov00, sd sqrt(cov11 - cov01^2/cov00)). Otherwise i.i.d. log-normal from ``state.rtt_log_ms``
@@ -514,6 +517,8 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
     if abs(ratio - round(ratio)) < 1e-9 * ratio:
         ratio = float(round(ratio))
 
+    slow = getattr(model, "slow", None)
+    atom = slow.pick(rng) if slow is not None else 0
     ev = draw_events(model, handover, plan.tilt, rng, float(duration_s))
     starts, seg_state, llr = _state_path(plan, model, rng, n * step_s, start_state, ev.switches)
     llr += ev.llr
@@ -542,7 +547,10 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
         at += width
     resid = np.empty(n_ticks)
     resid[perm] = buf
-    bw_tick = np.exp(plan.mean_log[tick_state] + resid)
+    level_log = plan.mean_log[tick_state] + resid
+    if slow is not None:  # per-trace offset and drift (fit/slow.py), ticks ~ the model's step apart
+        level_log += slow.sample(rng, n_ticks, h, atom)
+    bw_tick = np.exp(level_log)
 
     if plan.has_rtt.any():
         z = rng.standard_normal(n_ticks)
