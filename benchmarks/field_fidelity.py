@@ -8,11 +8,12 @@ own trace), ``mode`` and ``scenario`` (kept as tags). Every file is read with tr
 reader (``split_column="segment"``); a file is one group, so a file's segments stay on one side of a
 split. When DIR is absent the benchmark prints why and exits 0 without figures.
 
-For each of ``--splits`` seeded splits (default 5; 1 with ``--quick``: the fit at its defaults takes about
-6 minutes per split on the 2-core machine, so 3 splits would not fit in 10 minutes) the files are cut into two disjoint
-halves A and B (A gets the extra file of an odd count). Then:
+For each of ``--splits`` seeded splits (default 5; 1 with ``--quick``: a split takes about 4 minutes on
+the 2-core machine, most of it the fit) the files are cut into two disjoint halves A and B (A gets the
+extra file of an odd count). Then:
 
-* tracegen: ``tracegen.fit(A)`` with its defaults, ``tracegen.synth`` of as many traces as B has, each
+* tracegen: ``tracegen.fit(A)`` with its defaults (two worker processes, which changes nothing but the
+  time), ``tracegen.synth`` of as many traces as B has, each
   as long as its B counterpart, at the model's step (one call per distinct length, ``start=`` running on
   so every trace has its own index and stream);
 * baselines, also one trace per B trace and as long: (a) i.i.d. resampling of all of A's bandwidth
@@ -59,6 +60,7 @@ READ_OPTIONS = {"time_column": "t_s", "bandwidth_column": "bandwidth_bps", "band
 BLOCK_S = 60.0
 HMM_STATES = range(2, 9)
 SETS = ("tracegen", "plain_hmm", "block", "iid")
+FIT_WORKERS = 2      # state counts fitted side by side: the same model bytes as one process (tracegen.parallel)
 TARGET_SCALE_RATIO = 1.5
 TARGET_HMM_FACTOR = 3.0
 TARGET_FEATURE_RATIO = 3.0
@@ -187,11 +189,14 @@ def run_split(files: dict[str, list], seed: int) -> dict:
     lengths = [len(t) for t in b]
     times: dict[str, float] = {}
     t0 = time.perf_counter()
-    model = tracegen.fit(a, progress=False)
+    model = tracegen.fit(a, progress=False, workers=FIT_WORKERS)
     times["fit"] = time.perf_counter() - t0
     step = float(model.step_s)
     sets: dict[str, list] = {}
-    extra: dict[str, Any] = {"model_states": int(model.n_states)}
+    slow = None if model.slow is None else {"offset_sd": math.sqrt(model.slow.between_var),
+                                            "drift_sd": math.sqrt(model.slow.drift_var),
+                                            "drift_time_s": model.slow.drift_time_s}
+    extra: dict[str, Any] = {"model_states": int(model.n_states), "slow": slow}
     t0 = time.perf_counter()
     sets["tracegen"] = tracegen_set(model, lengths, seed)
     times["synth"] = time.perf_counter() - t0
@@ -252,6 +257,12 @@ def targets(med: dict) -> dict:
     }
 
 
+def _slow_text(slow: dict | None) -> str:
+    if slow is None:
+        return "none"
+    return f"offset sd {slow['offset_sd']:.2f}, drift sd {slow['drift_sd']:.2f} over {slow['drift_time_s']:.0f} s"
+
+
 def _f(v: Any) -> str:
     return "-" if v is None else f"{v:.2f}"
 
@@ -290,7 +301,7 @@ def measure(data: Path = FIELD, n_splits: int = 5) -> dict | None:
             print_rows(f"split {i + 1}/{n_splits} (seed {seed}): A {len(s['files_a'])} files / {s['traces_a']} traces "
                        f"/ {s['hours_a']:.1f} h, B {len(s['files_b'])} files / {s['traces_b']} traces / "
                        f"{s['hours_b']:.1f} h; tracegen model {s['model_states']} states, plain HMM "
-                       f"{s['plain_hmm']['states']} states", s["scores"], scales)
+                       f"{s['plain_hmm']['states']} states; slow part {_slow_text(s['slow'])}", s["scores"], scales)
             if not s["lengths_match"]:
                 print("  note: a synthesised trace's length differs from its B counterpart")
             print("  time: " + ", ".join(f"{k} {v:.1f} s" for k, v in s["times_s"].items())
@@ -315,7 +326,7 @@ def measure(data: Path = FIELD, n_splits: int = 5) -> dict | None:
         "iid_ratio_by_scale": med["iid"]["by_scale"],
         "worst_feature": med["tracegen"]["worst_feature"], "worst_feature_ratio": med["tracegen"]["worst_feature_ratio"],
         "gap_ratio_by_feature": med["tracegen"]["by_feature"],
-        "per_split": [{"seed": s["seed"], "files_b": s["files_b"],
+        "per_split": [{"seed": s["seed"], "files_b": s["files_b"], "model_states": s["model_states"], "slow": s["slow"],
                        **{name: {k: s["scores"][name][k] for k in ("overall", "by_scale", "worst_feature",
                                                                    "worst_feature_ratio", "by_feature")}
                           for name in SETS}, "times_s": s["times_s"]} for s in first["splits"]],
