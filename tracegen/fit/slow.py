@@ -59,9 +59,9 @@ class SlowFit:
         return min(at, len(self.offsets) - 1)
 
     def to_dict(self) -> dict[str, Any]:
-        return {"offsets": list(self.offsets), "offset_weights": list(self.offset_weights),
-                "offset_jitter_var": self.offset_jitter_var, "block_s": self.block_s, "mean_log": self.mean_log, "between_var": self.between_var,
-                "drift_var": self.drift_var, "drift_time_s": self.drift_time_s, "noise_var": self.noise_var,
+        return {"block_s": self.block_s, "mean_log": self.mean_log, "between_var": self.between_var,
+                "offsets": list(self.offsets), "offset_weights": list(self.offset_weights),
+                "offset_jitter_var": self.offset_jitter_var, "drift_var": self.drift_var, "drift_time_s": self.drift_time_s, "noise_var": self.noise_var,
                 "loglik": self.loglik, "loglik_without": self.loglik_without, "n_blocks": self.n_blocks,
                 "n_traces": self.n_traces}
 
@@ -105,8 +105,7 @@ class SlowFit:
         phi = math.exp(-step_s / self.drift_time_s)
         sd = math.sqrt(self.drift_var)
         e = z[1:] * (sd * math.sqrt(1.0 - phi * phi))
-        s0 = z[0] * sd
-        # s_t = phi s_(t-1) + e_t from s_(-1) = s0 / phi ... written as a filter with initial state
+        s0 = z[0] * sd   # a stationary draw before the first sample: s_0 = phi s0 + e_0 is stationary too
         s = lfilter([1.0], [1.0, -phi], e, zi=[phi * s0])[0]
         u = self.offsets[atom] + rng.standard_normal() * math.sqrt(self.offset_jitter_var)
         return s + u
@@ -126,21 +125,13 @@ class _Blocks:
 
 def _log_level(prep: Prepared) -> list[np.ndarray]:
     """Per trace: log bandwidth of level samples, NaN elsewhere."""
-    out = []
-    for i, kind in enumerate(prep.kinds):
+    out, offset = [], 0
+    for kind, index in zip(prep.kinds, prep.run_index):
         x = np.full(kind.size, np.nan)
-        for (a, b), rows in zip(prep.run_index[i], _rows(prep, i)):
-            x[a:b] = prep.features[rows, 0]
+        for a, b in index:
+            x[a:b] = prep.features[offset:offset + b - a, 0]
+            offset += b - a
         out.append(x)
-    return out
-
-
-def _rows(prep: Prepared, i: int) -> list[slice]:
-    offset = sum(b - a for runs_ in prep.run_index[:i] for a, b in runs_)
-    out = []
-    for a, b in prep.run_index[i]:
-        out.append(slice(offset, offset + b - a))
-        offset += b - a
     return out
 
 
