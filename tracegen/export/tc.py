@@ -157,7 +157,12 @@ now_us() {{ local t=$EPOCHREALTIME; echo $((10#${{t/./}})); }}
 at() {{  # at SECONDS MICROSECONDS: wait until that long after the start
   if [ "$DRY" = 1 ]; then echo "# at $1 s"; return; fi
   local left=$((START + $2 - $(now_us)))
-  if [ "$left" -gt 0 ]; then sleep "$((left / 1000000)).$(printf %06d $((left % 1000000)))"; fi
+  # sleep in the background and wait for it: a trapped INT or TERM ends `wait` at once (bash manual,
+  # Signals), where a foreground sleep can swallow it and leave the script playing on
+  if [ "$left" -gt 0 ]; then
+    sleep "$((left / 1000000)).$(printf %06d $((left % 1000000)))" & SLEEPER=$!
+    wait "$SLEEPER"; SLEEPER=
+  fi
 }}
 '''
 
@@ -195,9 +200,10 @@ netem_setup() {{
 }}
 '''
 
-_START = r'''trap cleanup EXIT
-trap 'exit 130' INT
-trap 'exit 143' TERM
+_START = r'''SLEEPER=
+trap cleanup EXIT
+trap '[ -n "$SLEEPER" ] && kill "$SLEEPER" 2>/dev/null; exit 130' INT
+trap '[ -n "$SLEEPER" ] && kill "$SLEEPER" 2>/dev/null; exit 143' TERM
 setup
 {netem_setup}START=$(now_us)
 echo "tracegen-replay start $EPOCHREALTIME"
