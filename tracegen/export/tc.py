@@ -153,14 +153,18 @@ DRY=0
 NETEM=0
 run() {{ if [ "$DRY" = 1 ]; then echo "tc $*"; else tc "$@"; fi; }}
 cleanup() {{ [ "$DRY" = 1 ] || tc qdisc del dev "$DEV" root 2>/dev/null; }}
-now_us() {{ local t=$EPOCHREALTIME; echo $((10#${{t/./}})); }}
+# no command substitution in the timing: a child forked just as Ctrl-C arrives can take the interrupt as
+# handled (bash's wait-and-cooperative-exit), and the script would play on
+now_us() {{ local t=$EPOCHREALTIME; NOW=$((10#${{t/./}})); }}
 at() {{  # at SECONDS MICROSECONDS: wait until that long after the start
   if [ "$DRY" = 1 ]; then echo "# at $1 s"; return; fi
-  local left=$((START + $2 - $(now_us)))
+  now_us
+  local left=$((START + $2 - NOW)) frac
   # sleep in the background and wait for it: a trapped INT or TERM ends `wait` at once (bash manual,
   # Signals), where a foreground sleep can swallow it and leave the script playing on
   if [ "$left" -gt 0 ]; then
-    sleep "$((left / 1000000)).$(printf %06d $((left % 1000000)))" & SLEEPER=$!
+    printf -v frac %06d $((left % 1000000))
+    sleep "$((left / 1000000)).$frac" & SLEEPER=$!
     wait "$SLEEPER"; SLEEPER=
   fi
 }}
@@ -205,7 +209,8 @@ trap cleanup EXIT
 trap '[ -n "$SLEEPER" ] && kill "$SLEEPER" 2>/dev/null; exit 130' INT
 trap '[ -n "$SLEEPER" ] && kill "$SLEEPER" 2>/dev/null; exit 143' TERM
 setup
-{netem_setup}START=$(now_us)
+{netem_setup}now_us
+START=$NOW
 echo "tracegen-replay start $EPOCHREALTIME"
 '''
 
