@@ -135,8 +135,11 @@ def test_missing_netem_is_said_and_bandwidth_still_plays(tmp_path, fake_tc):
 def test_ctrl_c_removes_the_qdisc(tmp_path, fake_tc):
     env, log = fake_tc
     path = write_tc_script(trace(np.full(60, 3e6) * (1 + np.arange(60) % 2)), tmp_path / "r.sh")
+    # Ctrl-C as at a terminal: a shell started in the background (`cmd &`, e.g. a CI step) hands SIGINT on
+    # ignored, and bash cannot trap a signal ignored on entry (bash manual, Signals)
     proc = subprocess.Popen(["bash", str(path), "dev0"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env,
-                            text=True, start_new_session=True)
+                            text=True, start_new_session=True,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     time.sleep(1.5)
     os.killpg(proc.pid, signal.SIGINT)
     proc.communicate(timeout=10)
