@@ -34,7 +34,7 @@ from .dwell import DwellFit, fit_dwell
 from .events import fit_events
 from .levels import HmmFit, Segments, fit_hmm, jump_matrix, segments, state_paths
 from .loss import fit_gilbert_elliott, loss_by_state
-from .prepare import OUTAGE, Prepared, prepare
+from .prepare import OUTAGE, Prepared, level_log_bandwidth, prepare
 from .slow import DEFAULT_BLOCK_S, SlowFit, fit_slow, remove_slow
 
 if TYPE_CHECKING:
@@ -221,7 +221,7 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
     shift = 1 if with_outage else 0
     known = np.concatenate([p[p >= 0] for p in cand.paths])
     share = np.bincount(known, minlength=chosen + shift) / known.size
-    bw = _level_bandwidth(prep)
+    bw = np.exp(np.concatenate(level_log_bandwidth(prep)))   # as the level states see it: the slow part out
     rtt = np.concatenate([np.asarray(t["rtt_ms"]) for t in prep.traces])
     path = np.concatenate(cand.paths)
     loss_means = loss_by_state([np.asarray(t["loss"]) for t in prep.traces], cand.paths, chosen + shift)
@@ -262,18 +262,6 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
     return PathModel(prep.step_s, floor_bps, features, tuple(built),
                      tuple(tuple(float(v) for v in row) for row in cand.jumps), loss, events, report, __version__,
                      slow)
-
-
-def _level_bandwidth(prep: Prepared) -> np.ndarray:
-    """All traces' bandwidth as the level states see it (the slow part taken out), NaN off level runs."""
-    out, offset = [], 0
-    for kind, index in zip(prep.kinds, prep.run_index):
-        bw = np.full(kind.size, np.nan)
-        for a, b in index:
-            bw[a:b] = np.exp(prep.features[offset:offset + b - a, 0])
-            offset += b - a
-        out.append(bw)
-    return np.concatenate(out)
 
 
 def _columns(tr: Trace, path: np.ndarray) -> dict[str, Any]:

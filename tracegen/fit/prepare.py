@@ -58,6 +58,18 @@ def runs(values: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return starts, stops, values[starts]
 
 
+def level_log_bandwidth(prep: "Prepared") -> list[np.ndarray]:
+    """Per trace: the log bandwidth the level states see (``prep.features`` column 0), NaN off level runs."""
+    out, offset = [], 0
+    for kind, index in zip(prep.kinds, prep.run_index):
+        x = np.full(kind.size, np.nan)
+        for a, b in index:
+            x[a:b] = prep.features[offset:offset + b - a, 0]
+            offset += b - a
+        out.append(x)
+    return out
+
+
 def common_step(traces: Sequence[Trace], step_s: float | None) -> float:
     """The step to fit at: the one asked for, else the median of the traces' own steps."""
     if step_s is not None:

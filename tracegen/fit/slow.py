@@ -27,7 +27,7 @@ from scipy import optimize
 from scipy.signal import lfilter
 
 from ..errors import TracegenError
-from .prepare import LEVEL, Prepared
+from .prepare import LEVEL, Prepared, level_log_bandwidth
 
 DEFAULT_BLOCK_S = 60.0
 MIN_BLOCKS = 12          # fewer block means in all: no slow part is fitted
@@ -61,7 +61,8 @@ class SlowFit:
     def to_dict(self) -> dict[str, Any]:
         return {"block_s": self.block_s, "mean_log": self.mean_log, "between_var": self.between_var,
                 "offsets": list(self.offsets), "offset_weights": list(self.offset_weights),
-                "offset_jitter_var": self.offset_jitter_var, "drift_var": self.drift_var, "drift_time_s": self.drift_time_s, "noise_var": self.noise_var,
+                "offset_jitter_var": self.offset_jitter_var, "drift_var": self.drift_var,
+                "drift_time_s": self.drift_time_s, "noise_var": self.noise_var,
                 "loglik": self.loglik, "loglik_without": self.loglik_without, "n_blocks": self.n_blocks,
                 "n_traces": self.n_traces}
 
@@ -123,23 +124,11 @@ class _Blocks:
     mean: tuple[np.ndarray, ...]
 
 
-def _log_level(prep: Prepared) -> list[np.ndarray]:
-    """Per trace: log bandwidth of level samples, NaN elsewhere."""
-    out, offset = [], 0
-    for kind, index in zip(prep.kinds, prep.run_index):
-        x = np.full(kind.size, np.nan)
-        for a, b in index:
-            x[a:b] = prep.features[offset:offset + b - a, 0]
-            offset += b - a
-        out.append(x)
-    return out
-
-
 def block_means(prep: Prepared, block_s: float) -> _Blocks:
     """Tumbling-block means of level log-bandwidth; a block counts when half or more of it is level."""
     per = max(1, int(round(block_s / prep.step_s)))
     idx, means = [], []
-    for x in _log_level(prep):
+    for x in level_log_bandwidth(prep):
         n = x.size // per
         if n == 0:
             idx.append(np.zeros(0, np.int64))
