@@ -86,7 +86,7 @@ def test_model_file_round_trip_and_same_bytes(recovered, tmp_path):
     back = load(path)
     assert back.to_json() == model.to_json()
     data = json.loads(path.read_text())
-    assert data["format"] == "tracegen-path-model" and data["schema_version"] == 2
+    assert data["format"] == "tracegen-path-model" and data["schema_version"] == 3
     assert [s["level_bps"] for s in data["states"]] == sorted(s["level_bps"] for s in data["states"])
     assert all("mean_dwell_s" in s for s in data["states"])
     again = tracegen.fit(traces, states=range(2, 5), restarts=2, seed=1)

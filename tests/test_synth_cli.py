@@ -289,10 +289,10 @@ def test_bad_scenarios_are_refused_and_nothing_is_written(write, tmp_path, conte
 
 def test_a_model_of_another_schema_version_is_refused(write, tmp_path):
     data = json.loads(LTE.read_text())
-    data["schema_version"] = 3
+    data["schema_version"] = 4
     model = write("future.json", json.dumps(data))
     res = run("synth", model, "--out", tmp_path / "o")
-    assert res.exit_code == 2 and "schema version 3" in res.output and "future.json" in res.output
+    assert res.exit_code == 2 and "schema version 4" in res.output and "future.json" in res.output
     assert not (tmp_path / "o").exists()
 
 

@@ -24,8 +24,8 @@ from .fit.loss import GilbertElliott
 from .fit.slow import SlowFit
 
 FORMAT_NAME = "tracegen-path-model"
-SCHEMA_VERSION = 2
-READABLE_VERSIONS = (1, 2)   # version 1 files are version 2 without a slow part
+SCHEMA_VERSION = 3
+READABLE_VERSIONS = (1, 2, 3)   # 1: no slow part; 2: a slow part without an outage slope
 
 
 class ModelError(TracegenError):
@@ -230,6 +230,9 @@ class PathModel:
             lines.append(f"slow part (added to every level): per-trace offset sd {math.sqrt(w.between_var):.2f}, "
                          f"drift sd {math.sqrt(w.drift_var):.2f} over {w.drift_time_s:.0f} s (log bit/s; "
                          f"{w.block_s:g} s blocks)")
+            if w.outage_slope != 0.0:
+                lines.append(f"coverage holes: outage entries x{math.exp(-w.outage_slope):.2f} per unit lower "
+                             f"slow level (log rate slope {w.outage_slope:+.2f})")
         else:
             lines.append("slow part: none")
         table = r.get("selection_table") or []

@@ -2,7 +2,9 @@
 
 First the slow part (slow.py): a per-trace offset and an Ornstein–Uhlenbeck drift over minutes, fitted
 by maximum likelihood on one-minute block means and kept when it beats "none" by BIC; its smoothed
-estimate is taken out of the log-bandwidth, so the level states below model what is left.
+estimate is taken out of the log-bandwidth, so the level states below model what is left. With it
+comes the slope of the outage-entry rate on the slow level (holes.py): outages bunch where the level is
+low.
 
 Then, for each candidate number of level states K:
 1. a Gaussian HMM on log-bandwidth (joint with log-RTT on request) by Baum–Welch, best of several seeded
@@ -20,7 +22,7 @@ Then loss (Gilbert–Elliott, loss.py) and events (handovers and outages, events
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
 import numpy as np
@@ -34,8 +36,9 @@ from .dwell import DwellFit, fit_dwell
 from .events import fit_events
 from .levels import HmmFit, Segments, fit_hmm, jump_matrix, segments, state_paths
 from .loss import fit_gilbert_elliott, loss_by_state
+from .holes import fit_outage_slope
 from .prepare import OUTAGE, Prepared, level_log_bandwidth, prepare
-from .slow import DEFAULT_BLOCK_S, SlowFit, fit_slow, remove_slow
+from .slow import DEFAULT_BLOCK_S, SlowFit, fit_slow, remove_slow, smoothed
 
 if TYPE_CHECKING:
     from ..model import PathModel
@@ -189,7 +192,9 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
     if slow_block_s is not None:
         slow = fit_slow(prep, slow_block_s)
         if slow is not None:
-            prep = remove_slow(prep, slow)
+            values = smoothed(prep, slow)
+            slow = replace(slow, outage_slope=fit_outage_slope(prep, values, slow.block_s))
+            prep = remove_slow(prep, slow, values)
     with_outage = any(bool(np.any(k == OUTAGE)) for k in prep.kinds)
     if len(prep.features) == 0:
         raise TracegenError("the selection has no sample with known, non-zero bandwidth", field="selection")

@@ -51,6 +51,7 @@ class SlowFit:
     offsets: tuple[float, ...] = ()          # per fitted trace: E[u | its block means]
     offset_weights: tuple[float, ...] = ()   # its share of the level samples
     offset_jitter_var: float = 0.0           # mean Var[u | block means]
+    outage_slope: float = 0.0                # log outage-entry rate per unit of u + s(t) (holes.py)
 
     def pick(self, rng: np.random.Generator) -> int:
         """The fitted trace a synthetic trace takes its offset from (by weight)."""
@@ -64,7 +65,7 @@ class SlowFit:
                 "offset_jitter_var": self.offset_jitter_var, "drift_var": self.drift_var,
                 "drift_time_s": self.drift_time_s, "noise_var": self.noise_var,
                 "loglik": self.loglik, "loglik_without": self.loglik_without, "n_blocks": self.n_blocks,
-                "n_traces": self.n_traces}
+                "n_traces": self.n_traces, "outage_slope": self.outage_slope}
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any], where: str = "slow") -> "SlowFit":
@@ -94,10 +95,13 @@ class SlowFit:
         jitter = d.get("offset_jitter_var")
         if isinstance(jitter, bool) or not isinstance(jitter, (int, float)) or not math.isfinite(jitter) or jitter < 0:
             raise TracegenError(f"must be a number >= 0, got {jitter!r}", field=f"{where}.offset_jitter_var")
+        slope = d.get("outage_slope", 0.0)   # absent in schema-2 files: no coupling
+        if isinstance(slope, bool) or not isinstance(slope, (int, float)) or not math.isfinite(slope):
+            raise TracegenError(f"must be a finite number, got {slope!r}", field=f"{where}.outage_slope")
         return cls(float(vals["block_s"]), float(vals["mean_log"]), float(vals["between_var"]),
                    float(vals["drift_var"]), float(vals["drift_time_s"]), float(vals["noise_var"]),
                    float(vals["loglik"]), float(vals["loglik_without"]), int(vals["n_blocks"]), int(vals["n_traces"]),
-                   tuple(float(v) for v in offsets), tuple(float(v) for v in weights), float(jitter))
+                   tuple(float(v) for v in offsets), tuple(float(v) for v in weights), float(jitter), float(slope))
 
     def sample(self, rng: np.random.Generator, n: int, step_s: float, atom: int) -> np.ndarray:
         """u + s(t) at ``n`` samples ``step_s`` apart for one trace (stationary from its first sample), u
@@ -274,10 +278,11 @@ def smoothed(prep: Prepared, slow: SlowFit) -> list[np.ndarray]:
     return out
 
 
-def remove_slow(prep: Prepared, slow: SlowFit) -> Prepared:
-    """``prep`` with the smoothed slow part taken out of the level samples' log-bandwidth."""
+def remove_slow(prep: Prepared, slow: SlowFit, values: list[np.ndarray] | None = None) -> Prepared:
+    """``prep`` with the smoothed slow part (``values``, else :func:`smoothed`) taken out of the level
+    samples' log-bandwidth."""
     parts = []
-    for i, s in enumerate(smoothed(prep, slow)):
+    for i, s in enumerate(smoothed(prep, slow) if values is None else values):
         for a, b in prep.run_index[i]:
             parts.append(s[a:b])
     shift = np.concatenate(parts) if parts else np.zeros(0)
