@@ -17,7 +17,11 @@ schema reads rates and points. Any step >= ``MIN_STEP_S`` works, a multiple of h
    state; the jump chain is walked in one short Python loop over *segments* (a few hundred per hour of
    trace, against 360 000 samples at 10 ms), the only sequential part. A segment covers the base
    samples whose start lies in it (the state of a sample is the state at its start); a segment cut
-   short by a switch may hold none.
+   short by a switch may hold none. Coverage holes (fit/holes.py): with a slow part whose outage
+   slope is not 0, the slow level u + s(t) is drawn first, and the outage entry of each jump row is
+   weighted by exp(slope (u + s(t))) / norm at the jump's time t, the row renormalised; the walk then
+   goes in rounds of at most HOLE_BATCH segments, cut where a decision taken at a predicted time
+   differs from the one at the real time (``_state_path``), one round per cut.
 2. Level. Per segment, ticks of h seconds from the segment's start; log bandwidth of a tick is the
    state mean + an AR residual with the state's ARFit, *restarted at every segment* from its stationary
    distribution (the fit never glues segments either): p pre-sample values ~ N(0, Toeplitz(gamma)).
@@ -26,8 +30,9 @@ schema reads rates and points. Any step >= ``MIN_STEP_S`` works, a multiple of h
    zero-input response of (its own pre-sample values - the p values the concatenated run had before
    it) is added, which gives exactly the restarted process. A state without an ARFit gets i.i.d.
    N(0, cov[0][0]). A model with a slow part (fit/slow.py) adds, per trace, one offset (a fitted
-   trace's, drawn by its hours, plus jitter) and a stationary Ornstein–Uhlenbeck drift at every tick
-   (an exact AR(1) at h, one lfilter). Finer base samples hold the tick's value. Outage state:
+   trace's, drawn by its hours, plus jitter) and a stationary Ornstein–Uhlenbeck drift, drawn as an
+   exact AR(1) on a grid h apart from the trace's start (one lfilter); a tick takes the grid value at
+   its start. Finer base samples hold the tick's value. Outage state:
    bandwidth exactly 0.
 3. RTT, per tick and held like the level (the model says nothing below h). Joint models: log RTT from
    the state's 2x2 covariance given the tick's log-bandwidth residual (conditional Gaussian: slope
@@ -60,7 +65,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 from scipy import linalg
@@ -76,6 +81,7 @@ STREAM_PART = 0  # spawn_key=(index, STREAM_PART): the sampler's stream in trace
 _EPS = 1e-9
 _REL = 1e-12
 _ZIR_CAP = 1 << 16   # longest precomputed zero-input response (ticks); longer ones are computed on demand
+HOLE_BATCH = 64      # segments per piece and round when outage entries follow the slow level
 
 
 @dataclass(frozen=True, eq=False)
@@ -184,6 +190,44 @@ class _Plan:
     has_rtt: np.ndarray
     loss_tab: np.ndarray           # (n, 2): loss in GE good / bad ticks (equal columns without a chain)
     outage: np.ndarray             # (n,) bool
+    holes: "_Holes | None" = None  # outage entries tied to the slow level (fit/holes.py), None without
+
+
+@dataclass(frozen=True)
+class _Holes:
+    """What the state path needs to weight the outage column of each jump row by w(t) = exp(slope s(t)) / norm."""
+
+    slope: float
+    norm: float
+    outage_index: int
+    p_out: np.ndarray              # (n,) the model's outage column
+    q_out: np.ndarray              # (n,) the same under the tilt
+    rest_cum: np.ndarray           # (n, n) cumulative rows of q without the outage column, renormalised
+
+    def entry_prob(self, prev: np.ndarray, w: np.ndarray, out: np.ndarray) -> np.ndarray:
+        """P(next = outage) from states ``prev`` at weights ``w``, for the outage column ``out`` (p or q)."""
+        o = out[prev]
+        return o * w / (1.0 - o + o * w)
+
+
+def _build_holes(model: Any, jump_q: np.ndarray, outage: np.ndarray) -> _Holes | None:
+    from ..fit.holes import outage_weight_norm
+
+    slow = getattr(model, "slow", None)
+    if slow is None or slow.outage_slope == 0.0 or not outage.any():
+        return None
+    o = int(np.flatnonzero(outage)[0])
+    p = np.array(model.jumps, dtype=np.float64)
+    if not np.any(p[:, o] > 0):
+        return None
+    dwell = np.array([st.dwell.mean_s + st.dwell.step_s / 2 for st in model.states])   # as the walk rounds them
+    norm = outage_weight_norm(slow.outage_slope, np.asarray(slow.offsets), np.asarray(slow.offset_weights),
+                              slow.offset_jitter_var + slow.drift_var, p, o, dwell)
+    rest = jump_q.copy()
+    rest[:, o] = 0.0
+    total = rest.sum(axis=1, keepdims=True)
+    rest = np.divide(rest, total, out=np.zeros_like(rest), where=total > 0)
+    return _Holes(float(slow.outage_slope), norm, o, p[:, o].copy(), jump_q[:, o].copy(), _cum_rows(rest))
 
 
 def _build_plan(model: Any, tilt: Tilt | None) -> _Plan:
@@ -244,7 +288,8 @@ def _build_plan(model: Any, tilt: Tilt | None) -> _Plan:
     loss_tab[outage] = 1.0
     mean_log = np.array([-np.inf if lv.kind == "outage" else lv.mean_log for lv in levels])
     return _Plan(tp, _cum_rows(tp.start_q[None, :])[0], _cum_rows(tp.jump_q), mean_dwell, quantum,
-                 tuple(levels), mean_log, rtt_mu, rtt_beta, rtt_sd, has_rtt, loss_tab, outage)
+                 tuple(levels), mean_log, rtt_mu, rtt_beta, rtt_sd, has_rtt, loss_tab, outage,
+                 _build_holes(model, tp.jump_q, outage))
 
 
 _LAST: tuple[Any, Any, _Plan] | None = None
@@ -297,14 +342,25 @@ def _run_chain(nxt: np.ndarray) -> np.ndarray:
 
 
 def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float, start_state: int | None,
-                switches: list[tuple[float, int]]) -> tuple[np.ndarray, np.ndarray, float]:
+                switches: list[tuple[float, int]], hole_w: Callable[[np.ndarray], np.ndarray] | None = None
+                ) -> tuple[np.ndarray, np.ndarray, float]:
     """Segments covering [0, end_s): (starts_s, states, log p/q of the choices and dwells).
 
     The path is a walk from the first state, restarted with a fresh dwell at each switch (time, state);
     all the walks ("pieces") advance together, one batch of segments per round.
+
+    With coverage holes (``plan.holes`` and ``hole_w``, the outage weight at given times) a jump picks
+    the outage state with probability q w(t) / (1 - q + q w(t)) (q: the row's outage entry), else a
+    state of the row without the outage column, each decision from its own uniform. The batch is drawn
+    with w at predicted jump times (a mean dwell apart); then every decision is redone with w at its
+    real time from the same uniforms, and a piece is cut at its first decision that comes out
+    differently, which starts the piece's next round with the corrected state. So each jump is decided
+    exactly as a step-by-step walk would decide it; rounds are capped at HOLE_BATCH segments so that a
+    cut throws little away.
     """
     llr = 0.0
     tp = plan.tilt
+    holes = plan.holes if hole_w is not None else None
     stationary = start_state is None
     if stationary:
         first = int(np.searchsorted(plan.start_cum, rng.random(), side="right"))
@@ -323,49 +379,86 @@ def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float,
     quantum = plan.quantum_s
     q_min = float(quantum.min())
     covered = np.zeros(t0.size)
-    last = k0.copy()
+    last = k0.copy()            # the state a piece continues from, or (fresh) the state it starts in
     fresh = np.ones(t0.size, dtype=bool)
+    given_prev = np.full(t0.size, -1, dtype=np.int64)   # a fresh start's jump origin (-1: none)
     active = np.arange(t0.size)
+    first_round = True
     out_piece, out_start, out_state, out_prev, out_x = [], [], [], [], []
-    while active.size:  # a loop over rounds: nearly always one
+    while active.size:  # a loop over rounds: nearly always one without holes
         rem = need[active] - covered[active]
         m = np.minimum(np.ceil(rem / q_min) + 1, np.ceil(rem / plan.mean_dwell_s * 1.1) + 3).astype(np.int64)
+        if holes is not None:
+            m = np.minimum(m, HOLE_BATCH)
         total = int(m.sum())
         offs = np.cumsum(m) - m
+        row_in = np.arange(total) - np.repeat(offs, m)
         u = rng.random(total)
         # next state from every state for each draw; the first row of a piece is fixed (its start
         # state, or a jump from where it stopped)
         nxt = np.empty((total, n_states), dtype=np.int64)
-        for k in range(n_states):  # a loop over states
-            nxt[:, k] = np.searchsorted(cum[k], u, side="right")
-        nxt[offs] = np.where(fresh[active], k0[active], nxt[offs, last[active]])[:, None]
+        if holes is None:
+            for k in range(n_states):  # a loop over states
+                nxt[:, k] = np.searchsorted(cum[k], u, side="right")
+        else:
+            v = rng.random(total)
+            w_hat = hole_w(np.repeat(t0[active] + covered[active], m) + row_in * plan.mean_dwell_s)
+            for k in range(n_states):  # a loop over states
+                go = v < holes.entry_prob(np.full(total, k), w_hat, holes.q_out)
+                nxt[:, k] = np.where(go, holes.outage_index, np.searchsorted(holes.rest_cum[k], u, side="right"))
+        nxt[offs] = np.where(fresh[active], last[active], nxt[offs, last[active]])[:, None]
         st = _run_chain(nxt)
         x = np.empty(total)
         for k in np.unique(st).tolist():  # dwells in bulk, per state
             idx = np.flatnonzero(st == k)
             x[idx] = tp.dwell_q[k].sample_s(rng, idx.size)
-        if stationary and fresh[0] and active[0] == 0:  # the trace's first dwell: a residual one
+        if stationary and first_round and active[0] == 0:  # the trace's first dwell: a residual one
             x[0] = float(tp.dwell_q[int(st[0])].sample_residual_s(rng))
+        first_round = False
         qs = quantum[st]
         d = np.maximum(_ceil(x / qs), 1.0) * qs
         prev = np.empty(total, dtype=np.int64)
         prev[1:] = st[:-1]
-        prev[offs] = np.where(fresh[active], -1, last[active])
+        prev[offs] = np.where(fresh[active], given_prev[active], last[active])
         piece = np.repeat(active, m)
         ends = np.cumsum(d)
         base = np.repeat(ends[offs] - d[offs], m)
         local = ends - d - base                      # start within this round's run of the piece
         use = local < np.repeat(rem, m)
+        run = ends[offs + m - 1] - base[offs]          # time covered by this round, per piece
+        cut = np.zeros(active.size, dtype=bool)
+        if holes is not None:
+            decided = prev >= 0
+            decided[offs] &= ~fresh[active]        # a fresh start's state was given, not decided here
+            at = np.flatnonzero(decided & use)
+            w_true = hole_w(t0[piece[at]] + covered[piece[at]] + local[at])
+            to_out = v[at] < holes.entry_prob(prev[at], w_true, holes.q_out)
+            bad = to_out != (st[at] == holes.outage_index)
+            if bad.any():
+                wrong = at[bad]
+                pos, first_wrong = np.unique(piece[wrong], return_index=True)   # rows run piece by piece
+                f = wrong[first_wrong]                         # each cut piece's first wrong decision
+                which = np.searchsorted(active, pos)
+                limit = m.copy()
+                limit[which] = row_in[f]
+                use &= row_in < np.repeat(limit, m)
+                cut[which] = True
+                run[which] = local[f]
+                given_prev[pos] = prev[f]
+                rest_state = np.sum(holes.rest_cum[prev[f]] <= u[f][:, None], axis=1)   # searchsorted, row by row
+                cut_state = np.where(to_out[bad][first_wrong], holes.outage_index, rest_state)
         out_piece.append(piece[use])
         out_start.append(t0[piece[use]] + covered[piece[use]] + local[use])
         out_state.append(st[use])
         out_prev.append(prev[use])
         out_x.append(x[use])
-        run = ends[offs + m - 1] - base[offs]          # time covered by this round, per piece
-        short = run < rem
         covered[active] += run
         last[active] = st[offs + m - 1]
         fresh[active] = False
+        if cut.any():
+            last[active[cut]] = cut_state
+            fresh[active[cut]] = True
+        short = (run < rem) | cut
         active = active[short]
     piece = np.concatenate(out_piece)
     order = np.lexsort((np.concatenate(out_start), piece))
@@ -376,6 +469,10 @@ def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float,
         x = np.concatenate(out_x)[order]
         jumped = prev >= 0
         llr += float(tp.jump_log_ratio[prev[jumped], states[jumped]].sum())
+        if holes is not None and jumped.any():  # the renormalisations of the outage weighting differ
+            w = hole_w(starts[jumped])
+            o_p, o_q = holes.p_out[prev[jumped]], holes.q_out[prev[jumped]]
+            llr += float(np.sum(np.log1p(o_q * (w - 1.0)) - np.log1p(o_p * (w - 1.0))))
         resid = np.zeros(states.size, dtype=bool)
         resid[0] = stationary  # sorted by (piece, start): the trace's first segment comes first
         for k in np.flatnonzero(tp.dwell_scale != 1.0).tolist():
@@ -520,7 +617,16 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
     slow = getattr(model, "slow", None)
     atom = slow.pick(rng) if slow is not None else 0
     ev = draw_events(model, handover, plan.tilt, rng, float(duration_s))
-    starts, seg_state, llr = _state_path(plan, model, rng, n * step_s, start_state, ev.switches)
+    hole_w = None
+    if slow is not None:  # u + s(t) on a grid h apart from the trace's start, drawn before the path
+        n_grid = int(_ceil(n * step_s / h)) + 1
+        slow_grid = slow.sample(rng, n_grid, h, atom)
+        if plan.holes is not None:
+            w_grid = np.exp(plan.holes.slope * slow_grid - math.log(plan.holes.norm))
+
+            def hole_w(t: np.ndarray) -> np.ndarray:
+                return w_grid[np.minimum(_floor(np.asarray(t) / h + _EPS).astype(np.int64), n_grid - 1)]
+    starts, seg_state, llr = _state_path(plan, model, rng, n * step_s, start_state, ev.switches, hole_w)
     llr += ev.llr
 
     # segments on the base grid: a segment holds the base samples whose start lies in it
@@ -548,8 +654,9 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
     resid = np.empty(n_ticks)
     resid[perm] = buf
     level_log = plan.mean_log[tick_state] + resid
-    if slow is not None:  # per-trace offset and drift (fit/slow.py), ticks ~ the model's step apart
-        level_log += slow.sample(rng, n_ticks, h, atom)
+    tick_at = np.cumsum(tick_n) - tick_n                       # first base sample of each tick
+    if slow is not None:  # per-trace offset and drift (fit/slow.py): the grid value at each tick's start
+        level_log += slow_grid[np.minimum(_floor(tick_at * (b / h) + _EPS).astype(np.int64), n_grid - 1)]
     bw_tick = np.exp(level_log)
 
     if plan.has_rtt.any():
@@ -564,7 +671,6 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
     # Every base column is constant between tick boundaries and chain-step boundaries ("cells"), so one
     # table of cells x (t, bandwidth, RTT, loss, jitter, state) is repeated into one block of base
     # columns (a single allocation, big enough for huge pages); the state row holds int64 bits.
-    tick_at = np.cumsum(tick_n) - tick_n                       # first base sample of each tick
     if model.loss is not None:
         g_n = _tick_counts(np.array([nb]), ratio)[1]
         ge, _ = model.loss.sample(rng, g_n.size)
