@@ -22,6 +22,8 @@ extra file of an odd count). Then:
   (library defaults: diagonal covariance, default EM iterations) on A's log bandwidth with zeros clamped
   to the 10 kbit/s outage floor, 2..8 states chosen by hmmlearn's BIC, one ``sample`` per trace, exp'd
   back;
+* the field itself: A's own measured traces, as they are (what the other half of the corpus gives; a
+  model of A that draws as varied traces as A holds scores about the same);
 * each set scored with ``tracegen.coverage(B, set, seed=split_seed, n_permutations=0)`` at the default
   10, 60 and 300 s scales (its own group splits of B give the noise floor).
 
@@ -59,7 +61,7 @@ READ_OPTIONS = {"time_column": "t_s", "bandwidth_column": "bandwidth_bps", "band
                 "split_column": "segment", "tag_columns": ("mode", "scenario")}
 BLOCK_S = 60.0
 HMM_STATES = range(2, 9)
-SETS = ("tracegen", "plain_hmm", "block", "iid")
+SETS = ("tracegen", "plain_hmm", "block", "iid", "field")
 FIT_WORKERS = 2      # state counts fitted side by side: the same model bytes as one process (tracegen.parallel)
 TARGET_SCALE_RATIO = 1.5
 TARGET_HMM_FACTOR = 3.0
@@ -195,7 +197,8 @@ def run_split(files: dict[str, list], seed: int) -> dict:
     sets: dict[str, list] = {}
     slow = None if model.slow is None else {"offset_sd": math.sqrt(model.slow.between_var),
                                             "drift_sd": math.sqrt(model.slow.drift_var),
-                                            "drift_time_s": model.slow.drift_time_s}
+                                            "drift_time_s": model.slow.drift_time_s,
+                                            "outage_slope": model.slow.outage_slope}
     extra: dict[str, Any] = {"model_states": int(model.n_states), "slow": slow}
     t0 = time.perf_counter()
     sets["tracegen"] = tracegen_set(model, lengths, seed)
@@ -206,6 +209,7 @@ def run_split(files: dict[str, list], seed: int) -> dict:
     t0 = time.perf_counter()
     sets["block"] = block_set(a, lengths, step, seed)
     sets["iid"] = iid_set(a, lengths, step, seed)
+    sets["field"] = a   # the field itself: A's own measured traces against B
     times["block_iid"] = time.perf_counter() - t0
     scores = {}
     for name in SETS:
@@ -260,7 +264,8 @@ def targets(med: dict) -> dict:
 def _slow_text(slow: dict | None) -> str:
     if slow is None:
         return "none"
-    return f"offset sd {slow['offset_sd']:.2f}, drift sd {slow['drift_sd']:.2f} over {slow['drift_time_s']:.0f} s"
+    return (f"offset sd {slow['offset_sd']:.2f}, drift sd {slow['drift_sd']:.2f} over {slow['drift_time_s']:.0f} s, "
+            f"outage slope {slow.get('outage_slope', 0.0):+.2f}")
 
 
 def _f(v: Any) -> str:
@@ -321,7 +326,8 @@ def measure(data: Path = FIELD, n_splits: int = 5) -> dict | None:
         "dataset": folders[0].name, "n_splits": n_splits,
         "gap_ratio": med["tracegen"]["overall"], "gap_ratio_by_scale": med["tracegen"]["by_scale"],
         "plain_hmm_ratio": med["plain_hmm"]["overall"], "block_ratio": med["block"]["overall"],
-        "iid_ratio": med["iid"]["overall"],
+        "iid_ratio": med["iid"]["overall"], "field_ratio": med["field"]["overall"],
+        "field_ratio_by_scale": med["field"]["by_scale"],
         "plain_hmm_ratio_by_scale": med["plain_hmm"]["by_scale"], "block_ratio_by_scale": med["block"]["by_scale"],
         "iid_ratio_by_scale": med["iid"]["by_scale"],
         "worst_feature": med["tracegen"]["worst_feature"], "worst_feature_ratio": med["tracegen"]["worst_feature_ratio"],
