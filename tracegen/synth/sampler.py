@@ -82,6 +82,7 @@ _EPS = 1e-9
 _REL = 1e-12
 _ZIR_CAP = 1 << 16   # longest precomputed zero-input response (ticks); longer ones are computed on demand
 HOLE_BATCH = 64      # segments per piece and round when outage entries follow the slow level
+_SHORT_CHAIN = 256   # chains up to this many rows are walked row by row
 
 
 @dataclass(frozen=True, eq=False)
@@ -318,6 +319,12 @@ def _run_chain(nxt: np.ndarray) -> np.ndarray:
     short Python loop over blocks), then the states inside all blocks (B more numpy steps).
     """
     total, n = nxt.shape
+    if total <= _SHORT_CHAIN:  # a short batch (coverage holes): a plain walk is faster than the blocks
+        rows = nxt.tolist()
+        walk = [rows[0][0]]
+        for row in rows[1:]:  # a loop over at most _SHORT_CHAIN segments
+            walk.append(row[walk[-1]])
+        return np.array(walk, dtype=np.int64)
     size = max(1, math.isqrt(total))
     blocks = -(-total // size)
     pad = blocks * size - total
@@ -403,9 +410,11 @@ def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float,
         else:
             v = rng.random(total)
             w_hat = hole_w(np.repeat(t0[active] + covered[active], m) + row_in * plan.mean_dwell_s)
+            qo = holes.q_out[None, :]
+            go = v[:, None] < qo * w_hat[:, None] / (1.0 - qo + qo * w_hat[:, None])   # (total, n): entry_prob
             for k in range(n_states):  # a loop over states
-                go = v < holes.entry_prob(np.full(total, k), w_hat, holes.q_out)
-                nxt[:, k] = np.where(go, holes.outage_index, np.searchsorted(holes.rest_cum[k], u, side="right"))
+                nxt[:, k] = np.searchsorted(holes.rest_cum[k], u, side="right")
+            nxt[go] = holes.outage_index
         nxt[offs] = np.where(fresh[active], last[active], nxt[offs, last[active]])[:, None]
         st = _run_chain(nxt)
         x = np.empty(total)
