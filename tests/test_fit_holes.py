@@ -107,18 +107,18 @@ def _holes_model(slope: float = -1.5) -> PathModel:
     return PathModel.from_dict(json.loads(dataclasses.replace(with_outage(), slow=slow).to_json()))
 
 
-def _jump_counts(model: PathModel, w_of_t, n_walks: int, end_s: float, seed: int, tilt=None):
+def _jump_counts(model: PathModel, n_walks: int, end_s: float, seed: int, tilt=None):
     """Outage entries and all jumps out of level state 1, split by the weight in force; plus llr per walk."""
     plan = sampler._build_plan(model, tilt)
     rng = np.random.default_rng(seed)
     counts = {}
     llrs = []
     for _ in range(n_walks):
-        starts, states, llr = sampler._state_path(plan, model, rng, end_s, None, [], w_of_t)
+        starts, states, llr = sampler._state_path(plan, model, rng, end_s, None, [], HOLE)
         llrs.append(llr)
         prev, nxt, t = states[:-1], states[1:], starts[1:]
         for key, w in (("low", 5.0), ("high", 0.2)):
-            sel = (prev == 1) & (w_of_t(t) == w)
+            sel = (prev == 1) & (HOLE.at(t) == w)
             counts.setdefault(key, [0, 0, 0])
             counts[key][0] += int(np.sum(nxt[sel] == 0))
             counts[key][1] += int(np.sum(nxt[sel] == 2))
@@ -131,9 +131,12 @@ def _two_levels(t: np.ndarray) -> np.ndarray:
     return np.where(np.asarray(t) % 1200.0 < 600.0, 5.0, 0.2)
 
 
+HOLE = sampler._HoleWeights(_two_levels(np.arange(3601.0)), 1.0)   # the weights on a 1 s grid
+
+
 def test_each_jump_enters_an_outage_with_the_weighted_probability_at_its_own_time():
     model = _holes_model()
-    counts, _ = _jump_counts(model, _two_levels, 60, 3600.0, 11)
+    counts, _ = _jump_counts(model, 60, 3600.0, 11)
     for key, w in (("low", 5.0), ("high", 0.2)):
         to_out, to_two, n = counts[key]
         p = 0.2 * w / (0.8 + 0.2 * w)     # the outage column 0.2 weighted by w, the row renormalised
@@ -142,8 +145,8 @@ def test_each_jump_enters_an_outage_with_the_weighted_probability_at_its_own_tim
         assert to_out + to_two == n       # the rest goes to the only other state
 
 
-def test_the_batched_walk_gives_the_step_by_step_walk_law():
-    # the reference: a plain loop, one jump at a time, deciding each jump at its own time
+def test_the_walk_gives_the_law_of_a_plain_reference_walk():
+    # the reference: a plain loop with its own draws, one jump at a time, deciding each at its own time
     model = _holes_model()
     plan = sampler._build_plan(model, None)
     p = np.array(model.jumps)
@@ -165,12 +168,15 @@ def test_the_batched_walk_gives_the_step_by_step_walk_law():
     ref = np.array([plain_walk(2400.0) for _ in range(300)])
     ours = []
     for _ in range(300):
-        _, states, _ = sampler._state_path(plan, model, rng, 2400.0, None, [], _two_levels)
+        _, states, _ = sampler._state_path(plan, model, rng, 2400.0, None, [], HOLE)
         ours.append(int(np.sum(states[1:] == 0)))
     ours = np.array(ours)
     # Welch's t test of equal means and a two-sample KS test of the whole count distribution (scipy.stats)
     assert stats.ttest_ind(ours, ref, equal_var=False).pvalue > 0.001
     assert stats.ks_2samp(ours, ref).pvalue > 0.001
+    # a switch (a handover's new state) restarts the walk at its time in its state
+    starts, states, _ = sampler._state_path(plan, model, rng, 2400.0, None, [(1000.0, 2)], HOLE)
+    assert np.all(np.diff(starts) > 0) and states[starts == 1000.0].tolist() == [2]
 
 
 def test_a_tilted_walk_keeps_its_importance_weights_exact():
@@ -182,10 +188,10 @@ def test_a_tilted_walk_keeps_its_importance_weights_exact():
     rng = np.random.default_rng(22)
     weight, est, base = [], [], []
     for _ in range(1500):
-        _, states, llr = sampler._state_path(tilted, model, rng, 600.0, None, [], _two_levels)
+        _, states, llr = sampler._state_path(tilted, model, rng, 600.0, None, [], HOLE)
         weight.append(math.exp(llr))
         est.append(math.exp(llr) * np.sum(states[1:] == 0))
-        _, states, _ = sampler._state_path(plain, model, rng, 600.0, None, [], _two_levels)
+        _, states, _ = sampler._state_path(plain, model, rng, 600.0, None, [], HOLE)
         base.append(np.sum(states[1:] == 0))
     weight, est, base = np.array(weight), np.array(est), np.array(base)
     # importance sampling: E_q[p/q] = 1 and E_q[f p/q] = E_p[f], each within 4 standard errors

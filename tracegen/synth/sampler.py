@@ -19,9 +19,9 @@ schema reads rates and points. Any step >= ``MIN_STEP_S`` works, a multiple of h
    samples whose start lies in it (the state of a sample is the state at its start); a segment cut
    short by a switch may hold none. Coverage holes (fit/holes.py): with a slow part whose outage
    slope is not 0, the slow level u + s(t) is drawn first, and the outage entry of each jump row is
-   weighted by exp(slope (u + s(t))) / norm at the jump's time t, the row renormalised; the walk then
-   goes in rounds of at most HOLE_BATCH segments, cut where a decision taken at a predicted time
-   differs from the one at the real time (``_state_path``), one round per cut.
+   weighted by exp(slope (u + s(t))) / norm at the jump's time t, the row renormalised. A jump then
+   depends on its time, so the chain is walked segment by segment in Python (``_holes_walk``), its
+   uniforms and a dwell for every state drawn in bulk beforehand.
 2. Level. Per segment, ticks of h seconds from the segment's start; log bandwidth of a tick is the
    state mean + an AR residual with the state's ARFit, *restarted at every segment* from its stationary
    distribution (the fit never glues segments either): p pre-sample values ~ N(0, Toeplitz(gamma)).
@@ -65,7 +65,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 from scipy import linalg
@@ -81,8 +81,6 @@ STREAM_PART = 0  # spawn_key=(index, STREAM_PART): the sampler's stream in trace
 _EPS = 1e-9
 _REL = 1e-12
 _ZIR_CAP = 1 << 16   # longest precomputed zero-input response (ticks); longer ones are computed on demand
-HOLE_BATCH = 64      # segments per piece and round when outage entries follow the slow level
-_SHORT_CHAIN = 256   # chains up to this many rows are walked row by row
 
 
 @dataclass(frozen=True, eq=False)
@@ -205,11 +203,6 @@ class _Holes:
     q_out: np.ndarray              # (n,) the same under the tilt
     rest_cum: np.ndarray           # (n, n) cumulative rows of q without the outage column, renormalised
 
-    def entry_prob(self, prev: np.ndarray, w: np.ndarray, out: np.ndarray) -> np.ndarray:
-        """P(next = outage) from states ``prev`` at weights ``w``, for the outage column ``out`` (p or q)."""
-        o = out[prev]
-        return o * w / (1.0 - o + o * w)
-
 
 def _build_holes(model: Any, jump_q: np.ndarray, outage: np.ndarray) -> _Holes | None:
     from ..fit.holes import outage_weight_norm
@@ -319,12 +312,6 @@ def _run_chain(nxt: np.ndarray) -> np.ndarray:
     short Python loop over blocks), then the states inside all blocks (B more numpy steps).
     """
     total, n = nxt.shape
-    if total <= _SHORT_CHAIN:  # a short batch (coverage holes): a plain walk is faster than the blocks
-        rows = nxt.tolist()
-        walk = [rows[0][0]]
-        for row in rows[1:]:  # a loop over at most _SHORT_CHAIN segments
-            walk.append(row[walk[-1]])
-        return np.array(walk, dtype=np.int64)
     size = max(1, math.isqrt(total))
     blocks = -(-total // size)
     pad = blocks * size - total
@@ -349,25 +336,17 @@ def _run_chain(nxt: np.ndarray) -> np.ndarray:
 
 
 def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float, start_state: int | None,
-                switches: list[tuple[float, int]], hole_w: Callable[[np.ndarray], np.ndarray] | None = None
+                switches: list[tuple[float, int]], holes_w: "_HoleWeights | None" = None
                 ) -> tuple[np.ndarray, np.ndarray, float]:
     """Segments covering [0, end_s): (starts_s, states, log p/q of the choices and dwells).
 
     The path is a walk from the first state, restarted with a fresh dwell at each switch (time, state);
-    all the walks ("pieces") advance together, one batch of segments per round.
-
-    With coverage holes (``plan.holes`` and ``hole_w``, the outage weight at given times) a jump picks
-    the outage state with probability q w(t) / (1 - q + q w(t)) (q: the row's outage entry), else a
-    state of the row without the outage column, each decision from its own uniform. The batch is drawn
-    with w at predicted jump times (a mean dwell apart); then every decision is redone with w at its
-    real time from the same uniforms, and a piece is cut at its first decision that comes out
-    differently, which starts the piece's next round with the corrected state. So each jump is decided
-    exactly as a step-by-step walk would decide it; rounds are capped at HOLE_BATCH segments so that a
-    cut throws little away.
+    all the walks ("pieces") advance together, one batch of segments per round. With coverage holes
+    (``plan.holes`` and the trace's outage weights ``holes_w``) each jump depends on its time, so the
+    pieces are walked segment by segment instead (:func:`_holes_walk`).
     """
     llr = 0.0
     tp = plan.tilt
-    holes = plan.holes if hole_w is not None else None
     stationary = start_state is None
     if stationary:
         first = int(np.searchsorted(plan.start_cum, rng.random(), side="right"))
@@ -381,106 +360,79 @@ def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float,
     keep = t1 > t0
     t0, k0, need = t0[keep], k0[keep], (t1 - t0)[keep]
 
+    if plan.holes is not None and holes_w is not None:
+        piece, start, state, prev, x = _holes_walk(plan, rng, t0, k0, need, stationary, holes_w)
+        return _path_llr(plan, model, piece, start, state, prev, x, stationary, llr, holes_w)
+
     n_states = model.n_states
     cum = plan.jump_cum
     quantum = plan.quantum_s
     q_min = float(quantum.min())
     covered = np.zeros(t0.size)
-    last = k0.copy()            # the state a piece continues from, or (fresh) the state it starts in
+    last = k0.copy()
     fresh = np.ones(t0.size, dtype=bool)
-    given_prev = np.full(t0.size, -1, dtype=np.int64)   # a fresh start's jump origin (-1: none)
     active = np.arange(t0.size)
-    first_round = True
     out_piece, out_start, out_state, out_prev, out_x = [], [], [], [], []
-    while active.size:  # a loop over rounds: nearly always one without holes
+    while active.size:  # a loop over rounds: nearly always one
         rem = need[active] - covered[active]
         m = np.minimum(np.ceil(rem / q_min) + 1, np.ceil(rem / plan.mean_dwell_s * 1.1) + 3).astype(np.int64)
-        if holes is not None:
-            m = np.minimum(m, HOLE_BATCH)
         total = int(m.sum())
         offs = np.cumsum(m) - m
-        row_in = np.arange(total) - np.repeat(offs, m)
         u = rng.random(total)
         # next state from every state for each draw; the first row of a piece is fixed (its start
         # state, or a jump from where it stopped)
         nxt = np.empty((total, n_states), dtype=np.int64)
-        if holes is None:
-            for k in range(n_states):  # a loop over states
-                nxt[:, k] = np.searchsorted(cum[k], u, side="right")
-        else:
-            v = rng.random(total)
-            w_hat = hole_w(np.repeat(t0[active] + covered[active], m) + row_in * plan.mean_dwell_s)
-            qo = holes.q_out[None, :]
-            go = v[:, None] < qo * w_hat[:, None] / (1.0 - qo + qo * w_hat[:, None])   # (total, n): entry_prob
-            for k in range(n_states):  # a loop over states
-                nxt[:, k] = np.searchsorted(holes.rest_cum[k], u, side="right")
-            nxt[go] = holes.outage_index
-        nxt[offs] = np.where(fresh[active], last[active], nxt[offs, last[active]])[:, None]
+        for k in range(n_states):  # a loop over states
+            nxt[:, k] = np.searchsorted(cum[k], u, side="right")
+        nxt[offs] = np.where(fresh[active], k0[active], nxt[offs, last[active]])[:, None]
         st = _run_chain(nxt)
         x = np.empty(total)
         for k in np.unique(st).tolist():  # dwells in bulk, per state
             idx = np.flatnonzero(st == k)
             x[idx] = tp.dwell_q[k].sample_s(rng, idx.size)
-        if stationary and first_round and active[0] == 0:  # the trace's first dwell: a residual one
+        if stationary and fresh[0] and active[0] == 0:  # the trace's first dwell: a residual one
             x[0] = float(tp.dwell_q[int(st[0])].sample_residual_s(rng))
-        first_round = False
         qs = quantum[st]
         d = np.maximum(_ceil(x / qs), 1.0) * qs
         prev = np.empty(total, dtype=np.int64)
         prev[1:] = st[:-1]
-        prev[offs] = np.where(fresh[active], given_prev[active], last[active])
+        prev[offs] = np.where(fresh[active], -1, last[active])
         piece = np.repeat(active, m)
         ends = np.cumsum(d)
         base = np.repeat(ends[offs] - d[offs], m)
         local = ends - d - base                      # start within this round's run of the piece
         use = local < np.repeat(rem, m)
-        run = ends[offs + m - 1] - base[offs]          # time covered by this round, per piece
-        cut = np.zeros(active.size, dtype=bool)
-        if holes is not None:
-            decided = prev >= 0
-            decided[offs] &= ~fresh[active]        # a fresh start's state was given, not decided here
-            at = np.flatnonzero(decided & use)
-            w_true = hole_w(t0[piece[at]] + covered[piece[at]] + local[at])
-            to_out = v[at] < holes.entry_prob(prev[at], w_true, holes.q_out)
-            bad = to_out != (st[at] == holes.outage_index)
-            if bad.any():
-                wrong = at[bad]
-                pos, first_wrong = np.unique(piece[wrong], return_index=True)   # rows run piece by piece
-                f = wrong[first_wrong]                         # each cut piece's first wrong decision
-                which = np.searchsorted(active, pos)
-                limit = m.copy()
-                limit[which] = row_in[f]
-                use &= row_in < np.repeat(limit, m)
-                cut[which] = True
-                run[which] = local[f]
-                given_prev[pos] = prev[f]
-                rest_state = np.sum(holes.rest_cum[prev[f]] <= u[f][:, None], axis=1)   # searchsorted, row by row
-                cut_state = np.where(to_out[bad][first_wrong], holes.outage_index, rest_state)
         out_piece.append(piece[use])
         out_start.append(t0[piece[use]] + covered[piece[use]] + local[use])
         out_state.append(st[use])
         out_prev.append(prev[use])
         out_x.append(x[use])
+        run = ends[offs + m - 1] - base[offs]          # time covered by this round, per piece
+        short = run < rem
         covered[active] += run
         last[active] = st[offs + m - 1]
         fresh[active] = False
-        if cut.any():
-            last[active[cut]] = cut_state
-            fresh[active[cut]] = True
-        short = (run < rem) | cut
         active = active[short]
-    piece = np.concatenate(out_piece)
-    order = np.lexsort((np.concatenate(out_start), piece))
-    starts = np.concatenate(out_start)[order]
-    states = np.concatenate(out_state)[order]
+    return _path_llr(plan, model, np.concatenate(out_piece), np.concatenate(out_start), np.concatenate(out_state),
+                     np.concatenate(out_prev), np.concatenate(out_x), stationary, llr, None)
+
+
+def _path_llr(plan: _Plan, model: Any, piece: np.ndarray, start: np.ndarray, state: np.ndarray, prev: np.ndarray,
+              x: np.ndarray, stationary: bool, llr: float, holes_w: "_HoleWeights | None"
+              ) -> tuple[np.ndarray, np.ndarray, float]:
+    """The segments in time order and log p/q of their jumps and dwells (0 without a tilt)."""
+    tp = plan.tilt
+    order = np.lexsort((start, piece))
+    starts = start[order]
+    states = state[order]
     if not tp.identity:
-        prev = np.concatenate(out_prev)[order]
-        x = np.concatenate(out_x)[order]
+        prev = prev[order]
+        x = x[order]
         jumped = prev >= 0
         llr += float(tp.jump_log_ratio[prev[jumped], states[jumped]].sum())
-        if holes is not None and jumped.any():  # the renormalisations of the outage weighting differ
-            w = hole_w(starts[jumped])
-            o_p, o_q = holes.p_out[prev[jumped]], holes.q_out[prev[jumped]]
+        if holes_w is not None and jumped.any():  # the renormalisations of the outage weighting differ
+            w = holes_w.at(starts[jumped])
+            o_p, o_q = plan.holes.p_out[prev[jumped]], plan.holes.q_out[prev[jumped]]
             llr += float(np.sum(np.log1p(o_q * (w - 1.0)) - np.log1p(o_p * (w - 1.0))))
         resid = np.zeros(states.size, dtype=bool)
         resid[0] = stationary  # sorted by (piece, start): the trace's first segment comes first
@@ -492,6 +444,82 @@ def _state_path(plan: _Plan, model: Any, rng: np.random.Generator, end_s: float,
             if stationary and states[0] == k:
                 llr += float(residual_log_ratio(model.states[k].dwell, c, x[:1])[0])
     return starts, states, llr
+
+
+@dataclass(frozen=True)
+class _HoleWeights:
+    """One trace's outage weights exp(slope (u + s(t))) / norm on a grid ``step_s`` apart from its start."""
+
+    grid: np.ndarray
+    step_s: float
+
+    def at(self, t: np.ndarray) -> np.ndarray:
+        idx = _floor(np.asarray(t, dtype=np.float64) / self.step_s + _EPS).astype(np.int64)
+        return self.grid[np.minimum(idx, self.grid.size - 1)]
+
+
+def _holes_walk(plan: _Plan, rng: np.random.Generator, t0: np.ndarray, k0: np.ndarray, need: np.ndarray,
+                stationary: bool, holes_w: _HoleWeights
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """The pieces walked one segment at a time: a jump from state k at time t enters the outage with
+    probability q w / (1 - q + q w) (q = the row's outage entry, w = the weight at t), decided by one
+    uniform, else goes to a state of the row without its outage column, by another. Uniforms and a dwell
+    for every state are drawn in bulk per batch of rows, so the loop only looks them up (a loop over
+    segments, a few hundred per hour of trace). Returns piece, start, state, origin (-1 at a piece's
+    start) and dwell draw per segment."""
+    from bisect import bisect_right
+
+    holes = plan.holes
+    tp = plan.tilt
+    n = plan.quantum_s.size
+    o = holes.outage_index
+    q_out = holes.q_out.tolist()
+    rest = [row.tolist() for row in holes.rest_cum]
+    quantum = plan.quantum_s.tolist()
+    grid = holes_w.grid.tolist()
+    last_cell = len(grid) - 1
+    inv_step = 1.0 / holes_w.step_s
+    out_piece: list[int] = []
+    out_start: list[float] = []
+    out_state: list[int] = []
+    out_prev: list[int] = []
+    out_x: list[float] = []
+    for p in range(t0.size):  # a loop over pieces: the trace's start and its switches
+        t, end, state, prev = float(t0[p]), float(t0[p] + need[p]), int(k0[p]), -1
+        if stationary and p == 0:
+            x = float(tp.dwell_q[state].sample_residual_s(rng))
+        else:
+            x = float(tp.dwell_q[state].sample_s(rng, 1)[0])
+        rows = int(need[p] / plan.mean_dwell_s * 1.2) + 16
+        while True:  # a loop over batches: nearly always one
+            u = rng.random(rows).tolist()
+            v = rng.random(rows).tolist()
+            dwell = np.column_stack([tp.dwell_q[k].sample_s(rng, rows) for k in range(n)]).tolist()
+            for i in range(rows):  # a loop over segments
+                out_piece.append(p)
+                out_start.append(t)
+                out_state.append(state)
+                out_prev.append(prev)
+                out_x.append(x)
+                q = quantum[state]
+                r = x / q
+                t += max(math.ceil(r - _EPS - _REL * abs(r)), 1) * q   # _ceil, as the batched walk rounds
+                if t >= end:
+                    break
+                prev = state
+                a = q_out[state]
+                if a > 0.0:
+                    w = grid[min(int(t * inv_step + _EPS), last_cell)]
+                    go = v[i] < a * w / (1.0 - a + a * w)
+                else:
+                    go = False
+                state = o if go else bisect_right(rest[state], u[i])
+                x = dwell[i][state]
+            else:
+                continue
+            break
+    return (np.array(out_piece, dtype=np.int64), np.array(out_start), np.array(out_state, dtype=np.int64),
+            np.array(out_prev, dtype=np.int64), np.array(out_x))
 
 
 # --------------------------------------------------------------------------------------------------
@@ -626,16 +654,13 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
     slow = getattr(model, "slow", None)
     atom = slow.pick(rng) if slow is not None else 0
     ev = draw_events(model, handover, plan.tilt, rng, float(duration_s))
-    hole_w = None
+    holes_w = None
     if slow is not None:  # u + s(t) on a grid h apart from the trace's start, drawn before the path
         n_grid = int(_ceil(n * step_s / h)) + 1
         slow_grid = slow.sample(rng, n_grid, h, atom)
         if plan.holes is not None:
-            w_grid = np.exp(plan.holes.slope * slow_grid - math.log(plan.holes.norm))
-
-            def hole_w(t: np.ndarray) -> np.ndarray:
-                return w_grid[np.minimum(_floor(np.asarray(t) / h + _EPS).astype(np.int64), n_grid - 1)]
-    starts, seg_state, llr = _state_path(plan, model, rng, n * step_s, start_state, ev.switches, hole_w)
+            holes_w = _HoleWeights(np.exp(plan.holes.slope * slow_grid - math.log(plan.holes.norm)), h)
+    starts, seg_state, llr = _state_path(plan, model, rng, n * step_s, start_state, ev.switches, holes_w)
     llr += ev.llr
 
     # segments on the base grid: a segment holds the base samples whose start lies in it
