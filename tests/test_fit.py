@@ -194,6 +194,11 @@ def test_cli_slow_block_option(tmp_path, recovered):
                             "--out", str(out)], obj={})
     assert r.exit_code == 0, r.output
     assert "slow part: none" in r.output and json.loads(out.read_text())["report"]["slow_block_s"] is None
+    out2 = tmp_path / "m2.json"
+    r = runner.invoke(cli, ["fit", "--catalog", str(root), "--states", "3", "--restarts", "1", "--no-outage-slope",
+                            "--out", str(out2)], obj={})
+    assert r.exit_code == 0, r.output
+    assert json.loads(out2.read_text())["report"]["outage_slope"] is False
     bad = tmp_path / "bad.json"
     r = runner.invoke(cli, ["fit", "--catalog", str(root), "--states", "3", "--slow-block", "soon", "--out", str(bad)],
                       obj={})

@@ -11,6 +11,7 @@ import pytest
 from scipy import linalg, stats
 
 from builders import with_outage
+import tracegen
 from tracegen import Trace
 from tracegen.fit.holes import (block_entries, fit_outage_slope, outage_entry_rate, outage_weight_norm, poisson_slope,
                                 weighted_jumps)
@@ -228,3 +229,35 @@ def test_the_slope_goes_through_json_and_a_bad_one_is_refused():
     d["schema_version"] = 2
     d["slow"].pop("outage_slope")
     assert PathModel.from_dict(d).slow.outage_slope == 0.0
+
+
+def _field_like(rng: np.random.Generator, n_traces: int, duration_s: int, slope: float) -> list[Trace]:
+    """Test-only generator with plain loops: offset + OU drift + noise in log bandwidth, and outages of 1-3 s
+    that start at 0.01 exp(slope (u + s(t))) per level second."""
+    out = []
+    phi = math.exp(-1.0 / 150.0)
+    for _ in range(n_traces):
+        u, s = rng.normal(0.0, 0.6), rng.normal(0.0, 0.5)
+        bw = np.empty(duration_s)
+        left = 0
+        for t in range(duration_s):
+            s = phi * s + rng.normal(0.0, 0.5 * math.sqrt(1 - phi * phi))
+            if left == 0 and rng.random() < 0.01 * math.exp(slope * (u + s)):
+                left = int(rng.integers(1, 4))
+            bw[t] = 0.0 if left else math.exp(15.5 + u + s + rng.normal(0.0, 0.3))
+            left = max(left - 1, 0)
+        out.append(Trace.from_columns(np.arange(duration_s, dtype=float), bandwidth_bps=bw))
+    return out
+
+
+def test_fit_finds_the_slope_of_field_like_traces_and_can_be_told_not_to():
+    rng = np.random.default_rng(31)
+    traces = _field_like(rng, 12, 2400, -1.5)
+    model = tracegen.fit(traces, states=2, restarts=1)
+    # the smoothed slow level is estimated from the level samples, so the slope is recovered only roughly
+    assert model.slow is not None and -2.0 < model.slow.outage_slope < -1.0   # true: -1.5
+    assert model.report["outage_slope"] is True
+    off = tracegen.fit(traces, states=2, restarts=1, outage_slope=False)
+    assert off.slow.outage_slope == 0.0 and off.report["outage_slope"] is False
+    flat = tracegen.fit(_field_like(rng, 12, 2400, 0.0), states=2, restarts=1)
+    assert flat.slow is None or abs(flat.slow.outage_slope) < 0.5

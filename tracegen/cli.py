@@ -338,13 +338,15 @@ def _parse_states(text: str) -> list[int]:
 @click.option("--seed", default=0, show_default=True, help="Seed of the restarts.")
 @click.option("--slow-block", default="60s", show_default=True,
               help="Block length for the slow part (per-trace offset and drift over minutes); 'none' leaves it out.")
+@click.option("--outage-slope/--no-outage-slope", default=True, show_default=True,
+              help="Tie the outage-entry rate to the slow level (coverage holes; kept only when BIC says so).")
 @click.option("--out", "out", type=click.Path(dir_okay=False, path_type=Path), required=True, help="Model file to write (JSON).")
 @click.option("--force", is_flag=True, help="Replace --out if it exists.")
 @_catalog_option
 @_parallel_options
 @click.pass_context
 def fit_cmd(ctx: click.Context, where: tuple[str, ...], states: str, step: str | None, with_rtt: bool, restarts: int,
-            max_iter: int, criterion: str, seed: int, slow_block: str, out: Path, force: bool,
+            max_iter: int, criterion: str, seed: int, slow_block: str, outage_slope: bool, out: Path, force: bool,
             catalog_path: Path | None, workers: int | None, cluster: str | None) -> None:
     """Fit a path model to the selected catalog traces and write it as JSON."""
     from .fit import fit
@@ -359,8 +361,8 @@ def fit_cmd(ctx: click.Context, where: tuple[str, ...], states: str, step: str |
     cat = _open(ctx, catalog_path)
     traces = list(cat.traces(where))
     model = fit(traces, states=counts, step_s=step_s, with_rtt=with_rtt, restarts=restarts, seed=seed,
-                max_iter=max_iter, criterion=criterion, slow_block_s=slow_s, selection=list(where), workers=workers,
-                cluster=cluster)
+                max_iter=max_iter, criterion=criterion, slow_block_s=slow_s, outage_slope=outage_slope,
+                selection=list(where), workers=workers, cluster=cluster)
     model.save(out)
     click.echo(model.summary_text())
     click.echo(f"wrote {out}")

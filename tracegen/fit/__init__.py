@@ -166,13 +166,14 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
         step_s: float | None = None, with_rtt: bool = False, restarts: int = 3, seed: int = 0,
         max_iter: int = 100, tol: float = 1e-3, criterion: str = "full-bic", max_ar_order: int = 5,
         floor_bps: float = OUTAGE_FLOOR_BPS, slow_block_s: float | None = DEFAULT_BLOCK_S,
-        selection: Sequence[str] = (), progress: bool | None = None, workers: int | None = 1,
-        cluster: str | None = None) -> "PathModel":
+        outage_slope: bool = True, selection: Sequence[str] = (), progress: bool | None = None,
+        workers: int | None = 1, cluster: str | None = None) -> "PathModel":
     """Fit a path model to measured traces (see the module docstring for the method).
 
     ``states`` is the number of level states or a range to choose from (outages add a state of their own);
     ``slow_block_s`` is the block length of the slow part (per-trace offset and drift over minutes, slow.py),
-    fitted first and taken out of the data the level states see; None leaves it out.
+    fitted first and taken out of the data the level states see; None leaves it out. ``outage_slope``
+    ties the outage-entry rate to the slow level (coverage holes, holes.py; kept only when BIC says so).
     ``selection`` only goes into the report; ``tol`` is the EM's log-likelihood tolerance. ``workers``
     local processes or a Dask ``cluster`` (tracegen.parallel) fit the state counts side by side, each
     with its own restarts and seeds as in one process. Same traces and seed give the same model bytes.
@@ -193,7 +194,8 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
         slow = fit_slow(prep, slow_block_s)
         if slow is not None:
             values = smoothed(prep, slow)
-            slow = replace(slow, outage_slope=fit_outage_slope(prep, values, slow.block_s))
+            if outage_slope:
+                slow = replace(slow, outage_slope=fit_outage_slope(prep, values, slow.block_s))
             prep = remove_slow(prep, slow, values)
     with_outage = any(bool(np.any(k == OUTAGE)) for k in prep.kinds)
     if len(prep.features) == 0:
@@ -264,6 +266,7 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
     features = ("log_bandwidth_bps", "log_rtt_ms") if with_rtt else ("log_bandwidth_bps",)
     report["slow"] = None if slow is None else slow.to_dict()
     report["slow_block_s"] = slow_block_s
+    report["outage_slope"] = outage_slope
     return PathModel(prep.step_s, floor_bps, features, tuple(built),
                      tuple(tuple(float(v) for v in row) for row in cand.jumps), loss, events, report, __version__,
                      slow)
