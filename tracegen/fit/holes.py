@@ -55,9 +55,9 @@ def block_entries(prep: Prepared, slow_values: list[np.ndarray], block_s: float
 
 
 def poisson_slope(counts: np.ndarray, exposure: np.ndarray, x: np.ndarray) -> tuple[float, float, float, float]:
-    """Maximum-likelihood Poisson regression log E[count] = log exposure + a + b x, by Newton's method on
-    the concave log-likelihood. Returns (a, b, loglik, loglik of the intercept-only model); the
-    log-likelihoods leave out the log(count!) terms, which are the same for both."""
+    """Maximum-likelihood Poisson regression log E[count] = log exposure + a + b x, by a trust-region
+    Newton method (scipy's trust-exact) on the concave log-likelihood. Returns (a, b, loglik, loglik of
+    the intercept-only model); the log-likelihoods leave out the log(count!) terms, the same for both."""
     c, e, x = (np.asarray(v, dtype=float) for v in (counts, exposure, x))
     a0 = math.log(c.sum() / e.sum())
     ll0 = float(np.sum(c * (a0 + np.log(e))) - c.sum())

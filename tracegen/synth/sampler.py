@@ -454,8 +454,13 @@ class _HoleWeights:
     step_s: float
 
     def at(self, t: np.ndarray) -> np.ndarray:
-        idx = _floor(np.asarray(t, dtype=np.float64) / self.step_s + _EPS).astype(np.int64)
-        return self.grid[np.minimum(idx, self.grid.size - 1)]
+        return self.grid[_cell(np.asarray(t, dtype=np.float64) / self.step_s, self.grid.size)]
+
+
+def _cell(steps: np.ndarray, size: int) -> np.ndarray:
+    """The cell of a grid of ``size`` cells holding each position given in grid steps from its start
+    (rounding forgiven as in ``_floor``); positions past the end fall in the last cell."""
+    return np.minimum(_floor(steps).astype(np.int64), size - 1)
 
 
 def _holes_walk(plan: _Plan, rng: np.random.Generator, t0: np.ndarray, k0: np.ndarray, need: np.ndarray,
@@ -478,7 +483,7 @@ def _holes_walk(plan: _Plan, rng: np.random.Generator, t0: np.ndarray, k0: np.nd
     quantum = plan.quantum_s.tolist()
     grid = holes_w.grid.tolist()
     last_cell = len(grid) - 1
-    inv_step = 1.0 / holes_w.step_s
+    grid_step = holes_w.step_s
     out_piece: list[int] = []
     out_start: list[float] = []
     out_state: list[int] = []
@@ -509,7 +514,8 @@ def _holes_walk(plan: _Plan, rng: np.random.Generator, t0: np.ndarray, k0: np.nd
                 prev = state
                 a = q_out[state]
                 if a > 0.0:
-                    w = grid[min(int(t * inv_step + _EPS), last_cell)]
+                    c = t / grid_step   # the cell as _cell finds it, so the llr reads the same weight
+                    w = grid[min(math.floor(c + _EPS + _REL * abs(c)), last_cell)]
                     go = v[i] < a * w / (1.0 - a + a * w)
                 else:
                     go = False
@@ -690,7 +696,7 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
     level_log = plan.mean_log[tick_state] + resid
     tick_at = np.cumsum(tick_n) - tick_n                       # first base sample of each tick
     if slow is not None:  # per-trace offset and drift (fit/slow.py): the grid value at each tick's start
-        level_log += slow_grid[np.minimum(_floor(tick_at * (b / h) + _EPS).astype(np.int64), n_grid - 1)]
+        level_log += slow_grid[_cell(tick_at * (b / h), n_grid)]
     bw_tick = np.exp(level_log)
 
     if plan.has_rtt.any():
