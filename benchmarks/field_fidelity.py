@@ -1,6 +1,6 @@
 """Field fidelity: fit on half of a real corpus's files, synthesise, and measure the gap to the other half.
 
-Usage: python benchmarks/field_fidelity.py [--quick] [--splits N] [--data DIR]
+Usage: python benchmarks/field_fidelity.py [--quick] [--splits N] [--draws N] [--data DIR]
 
 DIR (default ../shared/field-data next to the checkout) holds one folder per dataset of CSV files with
 columns ``t_s``, ``bandwidth_bps`` (bit/s), ``segment`` (a reconnect inside the file: each segment is its
@@ -25,7 +25,14 @@ extra file of an odd count). Then:
 * the field itself: A's own measured traces, as they are (what the other half of the corpus gives; a
   model of A that draws as varied traces as A holds scores about the same);
 * each set scored with ``tracegen.coverage(B, set, seed=split_seed, n_permutations=0)`` at the default
-  10, 60 and 300 s scales (its own group splits of B give the noise floor).
+  10, 60 and 300 s scales (its own group splits of B give the noise floor);
+* ``--draws`` (default 5) independent draws of every random set (tracegen's synthesis, hmmlearn's
+  sampling from its one fit, the block and i.i.d. resampling) on each split, each scored; a split's
+  figure for a set is the median over its draws, ratio by ratio (the overall one too: the median of
+  each draw's worst scale, never below the worst of the per-scale medians). One draw of 13-14 synthetic
+  traces is a small sample, and the ratio of single draws of one model varies widely.
+  Draw 0 uses the split's seed, so it is the single draw earlier versions scored; its medians are kept
+  in the JSON (``first_draw``).
 
 Nothing is chosen on B: the model, its state count and the baselines see A only.
 
@@ -66,6 +73,9 @@ FIT_WORKERS = 2      # state counts fitted side by side: the same model bytes as
 TARGET_SCALE_RATIO = 1.5
 TARGET_HMM_FACTOR = 3.0
 TARGET_FEATURE_RATIO = 3.0
+DRAWS = 5
+DRAW_SEED_STEP = 100_003   # draw d of split seed s uses seed s + d * DRAW_SEED_STEP (draw 0: the split seed)
+RANDOM_SETS = ("tracegen", "plain_hmm", "block", "iid")
 
 
 # --- data ----------------------------------------------------------------------------------------------
@@ -139,7 +149,7 @@ def block_set(a: list, lengths: list[int], step_s: float, seed: int) -> list:
     return out
 
 
-def plain_hmm_set(a: list, lengths: list[int], step_s: float, seed: int) -> tuple[list, dict]:
+def plain_hmm_fit(a: list, seed: int) -> tuple[Any, dict]:
     from hmmlearn.hmm import GaussianHMM
 
     from tracegen.trace import OUTAGE_FLOOR_BPS
@@ -159,13 +169,21 @@ def plain_hmm_set(a: list, lengths: list[int], step_s: float, seed: int) -> tupl
             m.fit(x, lens)
             fits[k] = (m.bic(x, lens), m)
     best = min(fits, key=lambda k: fits[k][0])
-    model = fits[best][1]
+    return fits[best][1], {"states": best, "bic": {str(k): float(v[0]) for k, v in fits.items()}}
+
+
+def plain_hmm_sample(model: Any, lengths: list[int], step_s: float, seed: int) -> list:
     rng = np.random.RandomState(seed)
     out = []
     for i, n in enumerate(lengths):
         obs, _ = model.sample(n, random_state=rng)
         out.append(_synthetic(np.exp(obs[:, 0]), step_s, "plain-hmm", i))
-    return out, {"states": best, "bic": {str(k): float(v[0]) for k, v in fits.items()}}
+    return out
+
+
+def plain_hmm_set(a: list, lengths: list[int], step_s: float, seed: int) -> tuple[list, dict]:
+    model, info = plain_hmm_fit(a, seed)
+    return plain_hmm_sample(model, lengths, step_s, seed), info
 
 
 def score(b: list, candidate: list, seed: int) -> dict:
@@ -181,45 +199,70 @@ def score(b: list, candidate: list, seed: int) -> dict:
             "noise_floor_splits": res.data["noise_floor"]["splits"]}
 
 
+def over_draws(draws: list[dict]) -> dict:
+    """One set's score on a split from its draws: the median of each ratio over the draws."""
+    if len(draws) == 1:
+        return {**draws[0], "draws_overall": [draws[0]["overall"]]}
+    scales = sorted({k for d in draws for k in d["by_scale"]}, key=float)
+    feats = sorted({f for d in draws for f in d["by_feature"]})
+    by_feature = {f: _median([d["by_feature"].get(f) for d in draws]) for f in feats}
+    by_feature = {f: v for f, v in by_feature.items() if v is not None}
+    worst = max(by_feature, key=by_feature.get) if by_feature else None
+    temporal_keys = sorted({k for d in draws for k in d["temporal"]})
+    return {"overall": _median([d["overall"] for d in draws]),
+            "by_scale": {k: _median([d["by_scale"].get(k) for d in draws]) for k in scales},
+            "by_feature": by_feature, "by_feature_scale": draws[0]["by_feature_scale"], "worst_feature": worst,
+            "worst_feature_ratio": by_feature.get(worst) if worst else None,
+            "temporal": {k: _median([d["temporal"].get(k) for d in draws]) for k in temporal_keys},
+            "noise_floor_splits": draws[0]["noise_floor_splits"], "draws_overall": [d["overall"] for d in draws]}
+
+
 # --- one split ------------------------------------------------------------------------------------------
-def run_split(files: dict[str, list], seed: int) -> dict:
+def run_split(files: dict[str, list], seed: int, draws: int = DRAWS) -> dict:
     import tracegen
 
     names_a, names_b = split_files(sorted(files), seed)
     a = [t for n in names_a for t in files[n]]
     b = [t for n in names_b for t in files[n]]
     lengths = [len(t) for t in b]
-    times: dict[str, float] = {}
+    times: dict[str, float] = defaultdict(float)
     t0 = time.perf_counter()
     model = tracegen.fit(a, progress=False, workers=FIT_WORKERS)
     times["fit"] = time.perf_counter() - t0
     step = float(model.step_s)
-    sets: dict[str, list] = {}
     slow = None if model.slow is None else {"offset_sd": math.sqrt(model.slow.between_var),
                                             "drift_sd": math.sqrt(model.slow.drift_var),
                                             "drift_time_s": model.slow.drift_time_s,
                                             "outage_slope": model.slow.outage_slope}
     extra: dict[str, Any] = {"model_states": int(model.n_states), "slow": slow}
     t0 = time.perf_counter()
-    sets["tracegen"] = tracegen_set(model, lengths, seed)
-    times["synth"] = time.perf_counter() - t0
+    hmm, extra["plain_hmm"] = plain_hmm_fit(a, seed)
+    times["plain_hmm_fit"] = time.perf_counter() - t0
+    makers = {"tracegen": lambda s: tracegen_set(model, lengths, s),
+              "plain_hmm": lambda s: plain_hmm_sample(hmm, lengths, step, s),
+              "block": lambda s: block_set(a, lengths, step, s),
+              "iid": lambda s: iid_set(a, lengths, step, s)}
+    per_draw: dict[str, list[dict]] = {name: [] for name in SETS}
+    lengths_match = True
+    for d in range(draws):
+        draw_seed = seed + d * DRAW_SEED_STEP
+        for name in RANDOM_SETS:
+            t0 = time.perf_counter()
+            made = makers[name](draw_seed)
+            times[f"make_{name}"] += time.perf_counter() - t0
+            lengths_match &= [len(t) for t in made] == lengths
+            t0 = time.perf_counter()
+            per_draw[name].append(score(b, made, seed))
+            times[f"coverage_{name}"] += time.perf_counter() - t0
     t0 = time.perf_counter()
-    sets["plain_hmm"], extra["plain_hmm"] = plain_hmm_set(a, lengths, step, seed)
-    times["plain_hmm_fit_sample"] = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    sets["block"] = block_set(a, lengths, step, seed)
-    sets["iid"] = iid_set(a, lengths, step, seed)
-    sets["field"] = a   # the field itself: A's own measured traces against B
-    times["block_iid"] = time.perf_counter() - t0
-    scores = {}
-    for name in SETS:
-        t0 = time.perf_counter()
-        scores[name] = score(b, sets[name], seed)
-        times[f"coverage_{name}"] = time.perf_counter() - t0
-    synth_len = [len(t) for t in sets["tracegen"]]
+    per_draw["field"].append(score(b, a, seed))   # the field itself: A's own measured traces against B
+    times["coverage_field"] = time.perf_counter() - t0
+    scores = {name: over_draws(per_draw[name]) for name in SETS}
+    first = {name: per_draw[name][0] for name in SETS}
     return {"seed": seed, "files_a": names_a, "files_b": names_b, "traces_a": len(a), "traces_b": len(b),
             "hours_a": sum(len(t) * t.step_s for t in a) / 3600, "hours_b": sum(len(t) * t.step_s for t in b) / 3600,
-            "step_s": step, "lengths_match": synth_len == lengths, "scores": scores, "times_s": times, **extra}
+            "step_s": step, "draws": draws, "lengths_match": lengths_match, "scores": scores,
+            "first_draw": first, "times_s": dict(times), **extra}
 
 
 # --- summary --------------------------------------------------------------------------------------------
@@ -228,10 +271,11 @@ def _median(values: list) -> float | None:
     return float(np.median(vals)) if vals else None
 
 
-def summarise(splits: list[dict]) -> dict:
+def summarise(splits: list[dict], key: str = "scores") -> dict:
+    """Medians over the splits of each set's figures (``key``: the per-split scores, or ``first_draw``)."""
     med: dict[str, Any] = {}
     for name in SETS:
-        sc = [s["scores"][name] for s in splits]
+        sc = [s[key][name] for s in splits]
         scales = sorted({k for x in sc for k in x["by_scale"]}, key=float)
         feats = sorted({f for x in sc for f in x["by_feature"]})
         by_feature = {f: _median([x["by_feature"].get(f) for x in sc]) for f in feats}
@@ -282,7 +326,7 @@ def print_rows(title: str, rows: dict, scales: list[str]) -> None:
               + f"  {r['worst_feature'] or '-'} {_f(r['worst_feature_ratio'])}")
 
 
-def measure(data: Path = FIELD, n_splits: int = 5) -> dict | None:
+def measure(data: Path = FIELD, n_splits: int = 5, draws: int = DRAWS) -> dict | None:
     folders = dataset_folders(data) if data.is_dir() else []
     if not folders:
         print(f"field fidelity: skipped, no field data at {data} (a folder of dataset folders of CSV files)")
@@ -299,7 +343,7 @@ def measure(data: Path = FIELD, n_splits: int = 5) -> dict | None:
         for i in range(n_splits):
             seed = 1000 + i
             t0 = time.perf_counter()
-            s = run_split(files, seed)
+            s = run_split(files, seed, draws)
             s["total_s"] = time.perf_counter() - t0
             splits.append(s)
             scales = sorted({k for x in s["scores"].values() for k in x["by_scale"]}, key=float)
@@ -307,6 +351,9 @@ def measure(data: Path = FIELD, n_splits: int = 5) -> dict | None:
                        f"/ {s['hours_a']:.1f} h, B {len(s['files_b'])} files / {s['traces_b']} traces / "
                        f"{s['hours_b']:.1f} h; tracegen model {s['model_states']} states, plain HMM "
                        f"{s['plain_hmm']['states']} states; slow part {_slow_text(s['slow'])}", s["scores"], scales)
+            if draws > 1:
+                print(f"  (each random set: median of {draws} draws; tracegen's overall per draw "
+                      + " ".join(_f(v) for v in s["scores"]["tracegen"]["draws_overall"]) + ")")
             if not s["lengths_match"]:
                 print("  note: a synthesised trace's length differs from its B counterpart")
             print("  time: " + ", ".join(f"{k} {v:.1f} s" for k, v in s["times_s"].items())
@@ -314,16 +361,21 @@ def measure(data: Path = FIELD, n_splits: int = 5) -> dict | None:
         med = summarise(splits)
         scales = sorted({k for x in med.values() for k in x["by_scale"]}, key=float)
         print_rows(f"medians over {n_splits} splits", med, scales)
+        med_first = summarise(splits, "first_draw")
+        if draws > 1:
+            print_rows(f"medians over {n_splits} splits, first draw only (one draw per split, as earlier versions)",
+                       med_first, scales)
         tg = targets(med)
         print("targets:")
         for k, v in tg.items():
             print(f"  {k:<32} {'met' if v['met'] else 'NOT met'}  ({v['value']})")
         out["datasets"][folder.name] = {"files": len(files), "traces": n_traces, "read_s": read_s,
-                                        "medians": med, "targets": tg, "splits": splits}
+                                        "medians": med, "medians_first_draw": med_first, "targets": tg,
+                                        "splits": splits}
     first = out["datasets"][folders[0].name]
     med = first["medians"]
     out.update({
-        "dataset": folders[0].name, "n_splits": n_splits,
+        "dataset": folders[0].name, "n_splits": n_splits, "draws": draws,
         "gap_ratio": med["tracegen"]["overall"], "gap_ratio_by_scale": med["tracegen"]["by_scale"],
         "plain_hmm_ratio": med["plain_hmm"]["overall"], "block_ratio": med["block"]["overall"],
         "iid_ratio": med["iid"]["overall"], "field_ratio": med["field"]["overall"],
@@ -332,9 +384,12 @@ def measure(data: Path = FIELD, n_splits: int = 5) -> dict | None:
         "iid_ratio_by_scale": med["iid"]["by_scale"],
         "worst_feature": med["tracegen"]["worst_feature"], "worst_feature_ratio": med["tracegen"]["worst_feature_ratio"],
         "gap_ratio_by_feature": med["tracegen"]["by_feature"],
+        "first_draw": {name: {"overall": first["medians_first_draw"][name]["overall"],
+                              "by_scale": first["medians_first_draw"][name]["by_scale"]} for name in SETS},
         "per_split": [{"seed": s["seed"], "files_b": s["files_b"], "model_states": s["model_states"], "slow": s["slow"],
                        **{name: {k: s["scores"][name][k] for k in ("overall", "by_scale", "worst_feature",
-                                                                   "worst_feature_ratio", "by_feature")}
+                                                                   "worst_feature_ratio", "by_feature",
+                                                                   "draws_overall")}
                           for name in SETS}, "times_s": s["times_s"]} for s in first["splits"]],
         "targets": first["targets"], "all_targets_met": all(v["met"] for v in first["targets"].values()),
     })
@@ -345,13 +400,18 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="1 split instead of 5 (the fit keeps its defaults)")
     ap.add_argument("--splits", type=int, default=None, help="number of seeded A/B splits (default 5, 1 with --quick)")
+    ap.add_argument("--draws", type=int, default=DRAWS,
+                    help=f"draws of every random set per split, each scored; the split's figure is their median "
+                         f"(default {DRAWS})")
     ap.add_argument("--data", type=Path, default=FIELD, help="folder of dataset folders (default ../shared/field-data)")
     args = ap.parse_args()
     n = args.splits if args.splits is not None else (1 if args.quick else 5)
     if n < 1:
         ap.error("--splits must be at least 1")
+    if args.draws < 1:
+        ap.error("--draws must be at least 1")
     start = time.perf_counter()
-    out = measure(args.data, n)
+    out = measure(args.data, n, args.draws)
     if out is None:
         print(json.dumps({"skipped": f"no field data at {args.data}"}))
         return
