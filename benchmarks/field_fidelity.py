@@ -181,11 +181,6 @@ def plain_hmm_sample(model: Any, lengths: list[int], step_s: float, seed: int) -
     return out
 
 
-def plain_hmm_set(a: list, lengths: list[int], step_s: float, seed: int) -> tuple[list, dict]:
-    model, info = plain_hmm_fit(a, seed)
-    return plain_hmm_sample(model, lengths, step_s, seed), info
-
-
 def score(b: list, candidate: list, seed: int) -> dict:
     import tracegen
 
