@@ -13,7 +13,7 @@ from scipy import linalg, stats
 from builders import with_outage
 import tracegen
 from tracegen import Trace
-from tracegen.fit.holes import (block_entries, fit_outage_slope, outage_entry_rate, outage_weight_norm, poisson_slope,
+from tracegen.fit.holes import (block_entries, fit_outage_slope, outage_entry_rate, poisson_slope, rate_weight_map,
                                 weighted_jumps)
 from tracegen.fit.prepare import prepare
 from tracegen.fit.slow import SlowFit
@@ -89,17 +89,37 @@ def test_entry_rate_is_the_renewal_reward_rate_of_the_semi_markov_chain():
         assert outage_entry_rate(p, 0, d, np.array([w]))[0] == pytest.approx(f @ pw[:, 0] / (f @ d), rel=1e-10)
 
 
-def test_the_norm_keeps_the_long_run_entry_rate():
+def test_the_weights_give_the_fitted_rate_slope_and_keep_the_long_run_rate():
     p = np.array([[0.0, 0.6, 0.4], [0.3, 0.0, 0.7], [0.05, 0.95, 0.0]])
     d = np.array([2.0, 10.0, 16.0])
     offsets, weights, spread = np.array([-0.8, 0.1, 0.6]), np.array([0.2, 0.5, 0.3]), 0.35
-    z = outage_weight_norm(-1.5, offsets, weights, spread, p, 0, d)
-    # Monte Carlo over the slow level's own law (not the quadrature the norm uses)
+    s_nodes, log_w = rate_weight_map(-1.5, offsets, weights, spread, p, 0, d)
+    # the renewal-reward rate of the chain weighted by w(s) is c exp(-1.5 s): its log is linear in s, up to
+    # the most the chain can do (every jump into the outage: 0.0694 per s here, reached near s = -1.5)
+    s = np.linspace(-1.25, 1.5, 12)
+    rate = outage_entry_rate(p, 0, d, np.exp(np.interp(s, s_nodes, log_w)))
+    assert np.diff(np.log(rate)) / np.diff(s) == pytest.approx(np.full(11, -1.5), abs=2e-3)
+    # the plain weight exp(-1.5 s) would not: state 1 already jumps to the outage with 0.3, so a
+    # renormalised row saturates and the rate follows a flatter slope at low levels
+    plain = outage_entry_rate(p, 0, d, np.exp(-1.5 * s))
+    assert (np.log(plain[1]) - np.log(plain[0])) / (s[1] - s[0]) > -1.3
+    # Monte Carlo over the slow level's own law (not the quadrature the map uses): the long-run rate stays
     rng = np.random.default_rng(3)
     s = offsets[rng.choice(3, 200_000, p=weights)] + math.sqrt(spread) * rng.standard_normal(200_000)
-    rate = outage_entry_rate(p, 0, d, np.exp(-1.5 * s) / z).mean()
+    rate = outage_entry_rate(p, 0, d, np.exp(np.interp(s, s_nodes, log_w))).mean()
     assert rate == pytest.approx(outage_entry_rate(p, 0, d, np.ones(1))[0], rel=0.01)
-    assert outage_weight_norm(0.0, offsets, weights, spread, p, 0, d) == 1.0
+    assert rate_weight_map(0.0, offsets, weights, spread, p, 0, d)[0].size == 0
+
+
+def test_a_rate_beyond_reach_is_clipped_to_the_chain_s_limits():
+    # a two-state chain cannot enter its outage more often than once per cycle of the two dwells
+    # (renewal-reward, as above): at a steep slope the lowest levels ask for more and get the limit
+    p = np.array([[0.0, 1.0], [0.5, 0.5]])
+    d = np.array([5.0, 5.0])
+    s_nodes, log_w = rate_weight_map(-4.0, np.array([0.0]), np.array([1.0]), 0.5, p, 0, d)
+    rate = outage_entry_rate(p, 0, d, np.exp(np.interp(np.array([-3.0, 3.0]), s_nodes, log_w)))
+    assert rate[0] <= 1 / 10.0 * (1 + 1e-9) and rate[0] == pytest.approx(1 / 10.0, rel=1e-3)
+    assert np.all(np.isfinite(log_w)) and np.all(np.diff(log_w) <= 0)   # w falls as the level rises
 
 
 def _holes_model(slope: float = -1.5) -> PathModel:

@@ -13,9 +13,10 @@ outage state). Regressing on the smoothed level E[s | data] rather than s itself
 intercept for a Gaussian s (E[exp(b s) | data] = exp(b E[s | data] + b^2 Var[s | data] / 2)), so the
 slope is the one the sampler needs. The slope is kept when it pays for itself by BIC (one parameter).
 
-The sampler (synth/sampler.py) weights the outage column of each jump row by exp(slope s(t)) / z and
-renormalises the row; z is chosen so that the long-run rate of outage entries is that of the fitted
-chain (:func:`outage_weight_norm`): the slope moves outages to the low minutes, it does not add any.
+The sampler (synth/sampler.py) weights the outage column of each jump row by w(s(t)) and renormalises
+the row, with w chosen so that the chain's outage-entry rate at slow level s is c exp(slope s), and c so
+that the long-run rate is that of the fitted chain (:func:`rate_weight_map`): the slope moves outages to
+the low minutes, it does not add any.
 """
 
 from __future__ import annotations
@@ -114,28 +115,45 @@ def outage_entry_rate(jumps: np.ndarray, outage: int, mean_dwell_s: np.ndarray, 
     return (f * pw[:, :, outage]).sum(axis=1) / (f @ np.asarray(mean_dwell_s, dtype=float))
 
 
-def outage_weight_norm(slope: float, offsets: np.ndarray, weights: np.ndarray, spread_var: float,
-                       jumps: np.ndarray, outage: int, mean_dwell_s: np.ndarray) -> float:
-    """z such that weighting the outage column by exp(slope s) / z keeps the long-run outage-entry rate
-    of the unweighted chain, s drawn from a mixture of N(offset_a, spread_var) by ``weights`` (the
-    sampler's law of u + drift). The drift is slow beside the dwells, so the rate at a given s is that
-    of the chain with w held at its value (:func:`outage_entry_rate`). 1 when the slope is 0."""
-    target = float(outage_entry_rate(jumps, outage, mean_dwell_s, np.ones(1))[0])
-    if slope == 0.0 or not (target > 0.0):
-        return 1.0
+def rate_weight_map(slope: float, offsets: np.ndarray, weights: np.ndarray, spread_var: float, jumps: np.ndarray,
+                    outage: int, mean_dwell_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The weight w(s) of the outage column that makes the chain's outage-entry rate c exp(slope s), as a
+    table (s nodes, log w at them) to interpolate; c keeps the long-run rate of the unweighted chain, s
+    drawn from a mixture of N(offset_a, spread_var) by ``weights`` (the sampler's law of u + drift).
+
+    Weighting the column by exp(slope s) itself would not do: a row renormalised after the weighting
+    saturates for states that already jump to the outage often, so the chain's rate would follow a flatter
+    slope than the one fitted (by 10-35 % on field models). The drift is slow beside the dwells, so the
+    rate at a given s is that of the chain with w held at its value (:func:`outage_entry_rate`); that rate
+    grows with w, and the curve is inverted numerically. Rates beyond what any weight reaches are clipped
+    to the curve's ends. Empty tables when the slope is 0 or the chain never enters the outage."""
+    base = float(outage_entry_rate(jumps, outage, mean_dwell_s, np.ones(1))[0])
+    if slope == 0.0 or not (base > 0.0):
+        return np.zeros(0), np.zeros(0)
+    log_w = np.linspace(-_LOG_W_SPAN, _LOG_W_SPAN, _W_NODES)
+    log_r = np.log(np.maximum(outage_entry_rate(jumps, outage, mean_dwell_s, np.exp(log_w)), 1e-300))
+    log_r = np.maximum.accumulate(log_r)          # monotone against rounding at the flat ends
     z_nodes, z_w = _HERMITE
     z_w = z_w / z_w.sum()
-    s = (np.asarray(offsets, dtype=float)[:, None] + math.sqrt(max(spread_var, 0.0)) * z_nodes[None, :]).ravel()
-    ws = (np.asarray(weights, dtype=float)[:, None] * z_w[None, :]).ravel()
-    g = slope * s
+    sd = math.sqrt(max(spread_var, 0.0))
+    s_law = (np.asarray(offsets, dtype=float)[:, None] + sd * z_nodes[None, :]).ravel()
+    w_law = (np.asarray(weights, dtype=float)[:, None] * z_w[None, :]).ravel()
 
-    def excess(log_z: float) -> float:
-        return math.log(float(ws @ outage_entry_rate(jumps, outage, mean_dwell_s, np.exp(g - log_z)))) \
-            - math.log(target)
+    def excess(log_c: float) -> float:
+        want = np.clip(log_c + slope * s_law, log_r[0], log_r[-1])
+        return math.log(float(w_law @ np.exp(want))) - math.log(base)
 
-    lo, hi = float(g.min()) - 30.0, float(g.max()) + 30.0   # the rate saturates beyond: signs differ
-    return math.exp(optimize.brentq(excess, lo, hi, xtol=1e-10))
+    g = slope * s_law
+    log_c = optimize.brentq(excess, math.log(base) - float(g.max()) - 60.0, math.log(base) - float(g.min()) + 60.0,
+                            xtol=1e-12)
+    lo, hi = float(np.min(offsets)) - 8.0 * sd - 1.0, float(np.max(offsets)) + 8.0 * sd + 1.0
+    s_nodes = np.linspace(lo, hi, _S_NODES)
+    want = np.clip(log_c + slope * s_nodes, log_r[0], log_r[-1])
+    return s_nodes, np.interp(want, log_r, log_w)
 
 
-__all__ = ["fit_outage_slope", "poisson_slope", "block_entries", "outage_weight_norm", "outage_entry_rate",
+_LOG_W_SPAN, _W_NODES, _S_NODES = 12.0, 961, 1025   # log w in [-12, 12] every 0.025; s every ~0.01-0.03
+
+
+__all__ = ["fit_outage_slope", "poisson_slope", "block_entries", "rate_weight_map", "outage_entry_rate",
            "weighted_jumps", "MIN_ENTRIES"]

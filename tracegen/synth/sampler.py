@@ -19,7 +19,8 @@ schema reads rates and points. Any step >= ``MIN_STEP_S`` works, a multiple of h
    samples whose start lies in it (the state of a sample is the state at its start); a segment cut
    short by a switch may hold none. Coverage holes (fit/holes.py): with a slow part whose outage
    slope is not 0, the slow level u + s(t) is drawn first, and the outage entry of each jump row is
-   weighted by exp(slope (u + s(t))) / norm at the jump's time t, the row renormalised. A jump then
+   weighted by w(u + s(t)) at the jump's time t, the row renormalised, w such that the chain's entry
+   rate is proportional to exp(slope (u + s(t))) (fit.holes.rate_weight_map). A jump then
    depends on its time, so the chain is walked segment by segment in Python (``_holes_walk``), its
    uniforms and a dwell for every state drawn in bulk beforehand.
 2. Level. Per segment, ticks of h seconds from the segment's start; log bandwidth of a tick is the
@@ -194,18 +195,21 @@ class _Plan:
 
 @dataclass(frozen=True)
 class _Holes:
-    """What the state path needs to weight the outage column of each jump row by w(t) = exp(slope s(t)) / norm."""
+    """What the state path needs to weight the outage column of each jump row by w(s(t)) (fit/holes.py)."""
 
-    slope: float
-    norm: float
+    s_nodes: np.ndarray            # slow level u + s(t) ...
+    log_w: np.ndarray              # ... and log w there, interpolated between nodes
     outage_index: int
     p_out: np.ndarray              # (n,) the model's outage column
     q_out: np.ndarray              # (n,) the same under the tilt
     rest_cum: np.ndarray           # (n, n) cumulative rows of q without the outage column, renormalised
 
+    def weights(self, slow_level: np.ndarray) -> np.ndarray:
+        return np.exp(np.interp(slow_level, self.s_nodes, self.log_w))
+
 
 def _build_holes(model: Any, jump_q: np.ndarray, outage: np.ndarray) -> _Holes | None:
-    from ..fit.holes import outage_weight_norm
+    from ..fit.holes import rate_weight_map
 
     slow = getattr(model, "slow", None)
     if slow is None or slow.outage_slope == 0.0 or not outage.any():
@@ -215,13 +219,15 @@ def _build_holes(model: Any, jump_q: np.ndarray, outage: np.ndarray) -> _Holes |
     if not np.any(p[:, o] > 0):
         return None
     dwell = np.array([st.dwell.mean_s + st.dwell.step_s / 2 for st in model.states])   # as the walk rounds them
-    norm = outage_weight_norm(slow.outage_slope, np.asarray(slow.offsets), np.asarray(slow.offset_weights),
-                              slow.offset_jitter_var + slow.drift_var, p, o, dwell)
+    s_nodes, log_w = rate_weight_map(slow.outage_slope, np.asarray(slow.offsets), np.asarray(slow.offset_weights),
+                                     slow.offset_jitter_var + slow.drift_var, p, o, dwell)
+    if s_nodes.size == 0:
+        return None
     rest = jump_q.copy()
     rest[:, o] = 0.0
     total = rest.sum(axis=1, keepdims=True)
     rest = np.divide(rest, total, out=np.zeros_like(rest), where=total > 0)
-    return _Holes(float(slow.outage_slope), norm, o, p[:, o].copy(), jump_q[:, o].copy(), _cum_rows(rest))
+    return _Holes(s_nodes, log_w, o, p[:, o].copy(), jump_q[:, o].copy(), _cum_rows(rest))
 
 
 def _build_plan(model: Any, tilt: Tilt | None) -> _Plan:
@@ -448,7 +454,7 @@ def _path_llr(plan: _Plan, model: Any, piece: np.ndarray, start: np.ndarray, sta
 
 @dataclass(frozen=True)
 class _HoleWeights:
-    """One trace's outage weights exp(slope (u + s(t))) / norm on a grid ``step_s`` apart from its start."""
+    """One trace's outage weights w(u + s(t)) on a grid ``step_s`` apart from its start."""
 
     grid: np.ndarray
     step_s: float
@@ -665,7 +671,7 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
         n_grid = int(_ceil(n * step_s / h)) + 1
         slow_grid = slow.sample(rng, n_grid, h, atom)
         if plan.holes is not None:
-            holes_w = _HoleWeights(np.exp(plan.holes.slope * slow_grid - math.log(plan.holes.norm)), h)
+            holes_w = _HoleWeights(plan.holes.weights(slow_grid), h)
     starts, seg_state, llr = _state_path(plan, model, rng, n * step_s, start_state, ev.switches, holes_w)
     llr += ev.llr
 
