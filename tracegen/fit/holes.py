@@ -31,6 +31,7 @@ from .prepare import LEVEL, OUTAGE, Prepared
 MIN_ENTRIES = 10          # fewer outage entries in all: no slope
 MAX_ABS_SLOPE = 5.0       # per unit of log bandwidth; beyond it the fit has found a handful of blocks
 _HERMITE = np.polynomial.hermite_e.hermegauss(24)   # nodes and weights for E[f(Z)], Z ~ N(0, 1)
+_LOG_W_SPAN, _W_NODES, _S_NODES = 12.0, 961, 1025   # log w in [-12, 12] every 0.025; s every ~0.01-0.03
 
 
 def block_entries(prep: Prepared, slow_values: list[np.ndarray], block_s: float
@@ -150,9 +151,6 @@ def rate_weight_map(slope: float, offsets: np.ndarray, weights: np.ndarray, spre
     s_nodes = np.linspace(lo, hi, _S_NODES)
     want = np.clip(log_c + slope * s_nodes, log_r[0], log_r[-1])
     return s_nodes, np.interp(want, log_r, log_w)
-
-
-_LOG_W_SPAN, _W_NODES, _S_NODES = 12.0, 961, 1025   # log w in [-12, 12] every 0.025; s every ~0.01-0.03
 
 
 __all__ = ["fit_outage_slope", "poisson_slope", "block_entries", "rate_weight_map", "outage_entry_rate",
