@@ -51,6 +51,7 @@ using LSTM Neural Networks", PAM 2019); no part of them is shipped with tracegen
 from __future__ import annotations
 
 import argparse
+import csv
 import json
 import math
 import sys
@@ -64,8 +65,8 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 FIELD = ROOT.parent / "shared" / "field-data"
-READ_OPTIONS = {"time_column": "t_s", "bandwidth_column": "bandwidth_bps", "bandwidth_unit": "bps",
-                "split_column": "segment", "tag_columns": ("mode", "scenario")}
+READ_OPTIONS = {"time_column": "t_s", "bandwidth_column": "bandwidth_bps", "bandwidth_unit": "bps"}
+OPTIONAL_COLUMNS = {"split_column": "segment", "tag_columns": ("mode", "scenario")}   # used where a file has them
 BLOCK_S = 60.0
 HMM_STATES = range(2, 9)
 SETS = ("tracegen", "plain_hmm", "block", "iid", "field")
@@ -87,10 +88,20 @@ def dataset_folders(data: Path) -> list[Path]:
 
 
 def read_dataset(folder: Path) -> dict[str, list]:
-    """Every CSV file of ``folder`` through tracegen's CSV reader: {file stem: [one Trace per segment]}."""
+    """Every CSV file of ``folder`` through tracegen's CSV reader: {file stem: [one Trace per segment]}.
+    Files need ``t_s`` and ``bandwidth_bps``; ``segment``, ``mode`` and ``scenario`` are read where present."""
     from tracegen.ingest import read_file
 
-    return {f.stem: read_file(f, "csv", **READ_OPTIONS) for f in sorted(folder.glob("*.csv"))}
+    return {f.stem: read_file(f, "csv", **read_options(f)) for f in sorted(folder.glob("*.csv"))}
+
+
+def read_options(path: Path) -> dict[str, Any]:
+    """READ_OPTIONS plus the optional columns that the file's header names."""
+    with path.open(newline="") as fh:
+        header = {name.strip() for name in next(csv.reader(fh), [])}
+    split, tags = OPTIONAL_COLUMNS["split_column"], OPTIONAL_COLUMNS["tag_columns"]
+    return {**READ_OPTIONS, "split_column": split if split in header else None,
+            "tag_columns": tuple(t for t in tags if t in header)}
 
 
 def split_files(names: list[str], seed: int) -> tuple[list[str], list[str]]:
