@@ -76,6 +76,7 @@ TARGET_HMM_FACTOR = 3.0
 TARGET_FEATURE_RATIO = 3.0
 DRAWS = 5
 DRAW_SEED_STEP = 100_003   # draw d of split seed s uses seed s + d * DRAW_SEED_STEP (draw 0: the split seed)
+BOOT_REPS = 4000
 RANDOM_SETS = ("tracegen", "plain_hmm", "block", "iid")
 
 
@@ -294,6 +295,30 @@ def summarise(splits: list[dict], key: str = "scores") -> dict:
     return med
 
 
+def median_intervals(splits: list[dict], reps: int = BOOT_REPS, level: float = 0.9, seed: int = 0) -> dict:
+    """How far the medians could move with other splits and draws: a two-stage percentile bootstrap
+    (splits with replacement, then each chosen split's draws with replacement; Davison & Hinkley,
+    *Bootstrap Methods and their Application*, 1997, sec. 3.8, cited from memory) of tracegen's overall
+    median and of plain hmmlearn's over tracegen's (splits paired). With 5 splits it is coarse, a guide to
+    how much of a gap to a target is noise, not a test."""
+    def table(name: str) -> np.ndarray:
+        rows = [s["scores"][name]["draws_overall"] for s in splits]
+        width = min(len(r) for r in rows)
+        return np.array([[np.nan if v is None else v for v in r[:width]] for r in rows], dtype=float)
+
+    rng = np.random.default_rng(seed)
+    pick = rng.integers(len(splits), size=(reps, len(splits)))
+
+    def medians(draws: np.ndarray) -> np.ndarray:
+        within = rng.integers(draws.shape[1], size=pick.shape + (draws.shape[1],))
+        return np.nanmedian(np.nanmedian(draws[pick[..., None], within], axis=2), axis=1)
+
+    ours_med, hmm_med = medians(table("tracegen")), medians(table("plain_hmm"))
+    q = [(1.0 - level) / 2.0 * 100.0, (1.0 + level) / 2.0 * 100.0]
+    return {"level": level, "reps": reps, "tracegen_overall": [float(v) for v in np.nanpercentile(ours_med, q)],
+            "plain_hmm_over_tracegen": [float(v) for v in np.nanpercentile(hmm_med / ours_med, q)]}
+
+
 def targets(med: dict) -> dict:
     ours, hmm, block = med["tracegen"], med["plain_hmm"], med["block"]
     scale_ok = bool(ours["by_scale"]) and all(v is not None and v <= TARGET_SCALE_RATIO for v in ours["by_scale"].values())
@@ -375,8 +400,13 @@ def measure(data: Path = FIELD, n_splits: int = 5, draws: int = DRAWS) -> dict |
         print("targets:")
         for k, v in tg.items():
             print(f"  {k:<32} {'met' if v['met'] else 'NOT met'}  ({v['value']})")
+        ci = median_intervals(splits)
+        print(f"noise: {ci['level']:.0%} bootstrap interval over splits and draws: tracegen overall "
+              f"{_f(ci['tracegen_overall'][0])}-{_f(ci['tracegen_overall'][1])}, plain hmmlearn / tracegen "
+              f"{_f(ci['plain_hmm_over_tracegen'][0])}-{_f(ci['plain_hmm_over_tracegen'][1])}")
         out["datasets"][folder.name] = {"files": len(files), "traces": n_traces, "read_s": read_s,
                                         "medians": med, "medians_first_draw": med_first, "targets": tg,
+                                        "intervals": ci,
                                         "splits": splits}
     first = out["datasets"][folders[0].name]
     med = first["medians"]
@@ -397,6 +427,7 @@ def measure(data: Path = FIELD, n_splits: int = 5, draws: int = DRAWS) -> dict |
                                                                    "worst_feature_ratio", "by_feature",
                                                                    "draws_overall")}
                           for name in SETS}, "times_s": s["times_s"]} for s in first["splits"]],
+        "intervals": first["intervals"],
         "targets": first["targets"], "all_targets_met": all(v["met"] for v in first["targets"].values()),
     })
     return out
