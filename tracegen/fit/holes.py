@@ -140,17 +140,19 @@ def rate_weight_map(slope: float, offsets: np.ndarray, weights: np.ndarray, spre
     s_law = (np.asarray(offsets, dtype=float)[:, None] + sd * z_nodes[None, :]).ravel()
     w_law = (np.asarray(weights, dtype=float)[:, None] * z_w[None, :]).ravel()
 
-    def excess(log_c: float) -> float:
-        want = np.clip(log_c + slope * s_law, log_r[0], log_r[-1])
-        return math.log(float(w_law @ np.exp(want))) - math.log(base)
+    def reachable(log_rate: np.ndarray) -> np.ndarray:
+        return np.clip(log_rate, log_r[0], log_r[-1])
 
     g = slope * s_law
+
+    def excess(log_c: float) -> float:
+        return math.log(float(w_law @ np.exp(reachable(log_c + g)))) - math.log(base)
+
     log_c = optimize.brentq(excess, math.log(base) - float(g.max()) - 60.0, math.log(base) - float(g.min()) + 60.0,
                             xtol=1e-12)
     lo, hi = float(np.min(offsets)) - 8.0 * sd - 1.0, float(np.max(offsets)) + 8.0 * sd + 1.0
     s_nodes = np.linspace(lo, hi, _S_NODES)
-    want = np.clip(log_c + slope * s_nodes, log_r[0], log_r[-1])
-    return s_nodes, np.interp(want, log_r, log_w)
+    return s_nodes, np.interp(reachable(log_c + slope * s_nodes), log_r, log_w)
 
 
 __all__ = ["fit_outage_slope", "poisson_slope", "block_entries", "rate_weight_map", "outage_entry_rate",
