@@ -133,6 +133,29 @@ def test_verify_finds_damage_and_repair_removes_it(cat):
     assert cat.verify().ok and len(cat) == 2
 
 
+def test_repair_lists_whole_trace_files_again_instead_of_deleting_them(cat):
+    # Every trace file carries its own metadata, so a lost or damaged index is rebuilt, never emptied.
+    cat.add([trace(1, tags={"access": "lte"}, group="g1"), trace(2, source="b.csv")])
+    before = cat.rows()
+    files = sorted(p.name for p in (cat.root / TRACES_DIR).iterdir())
+    (cat.root / INDEX_FILE).unlink()
+    with pytest.raises(CatalogError, match="index is missing while traces/ holds 2 trace files"):
+        cat.rows()
+    assert not cat.verify().ok
+    fixed = cat.verify(repair=True)
+    assert fixed.ok and fixed.checked == 2
+    assert cat.rows() == before
+    (cat.root / INDEX_FILE).write_bytes(b"")  # an unreadable index
+    with pytest.raises(CatalogError, match="verify --repair"):
+        cat.rows()
+    (cat.root / TRACES_DIR / "stray.parquet").write_bytes(b"not ours")
+    fixed = cat.verify(repair=True)
+    assert fixed.ok and any("index.damaged.parquet" in r for r in fixed.repaired)
+    assert any("removed orphan traces/stray.parquet" in r for r in fixed.repaired)
+    assert cat.rows() == before
+    assert sorted(p.name for p in (cat.root / TRACES_DIR).iterdir()) == files
+
+
 def test_interrupted_commit_is_rolled_forward_or_back(cat, monkeypatch):
     cat.add([trace(1)])
     # Crash after the index was replaced but before the staged file moved: the next change finishes it.

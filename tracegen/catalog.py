@@ -42,6 +42,7 @@ from .trace import Trace
 FORMAT_NAME = "tracegen-catalog"
 FORMAT_VERSION = 1
 INDEX_FILE = "index.parquet"
+DAMAGED_INDEX_FILE = "index.damaged.parquet"  # where verify --repair sets an unreadable index aside
 TRACES_DIR = "traces"
 STAGING_DIR = ".staging"
 LOCK_FILE = ".lock"
@@ -113,6 +114,21 @@ def _index_table(rows: pd.DataFrame) -> pa.Table:
     rows = rows.sort_values("id", kind="stable") if len(rows) else rows
     arrays = [pa.array(rows[c].tolist() if len(rows) else [], type=f.type) for c, f in zip(INDEX_COLUMNS, fields)]
     return pa.Table.from_arrays(arrays, schema=schema)
+
+
+def _empty_index() -> pd.DataFrame:
+    return pd.DataFrame({c: pd.Series(dtype=object if c in _TEXT else float) for c in INDEX_COLUMNS})
+
+
+def _whole_trace_row(path: Path) -> dict[str, Any] | None:
+    """The index row for a file in ``traces/`` that reads as a trace whose content id is its file name."""
+    if path.suffix != ".parquet" or not path.is_file():
+        return None
+    try:
+        trace = Trace.from_arrow(pq.read_table(path), path=str(path))
+    except (TracegenError, pa.ArrowException, OSError):
+        return None
+    return index_row(trace, _sha256(path)) if f"{trace.id}.parquet" == path.name else None
 
 
 def read_task(job: tuple[str, str, Labels, dict[str, Any]]) -> tuple[list[Trace], TracegenError | None]:
@@ -192,7 +208,11 @@ class Catalog:
         """The index as a DataFrame; ``tags`` and ``provenance`` decoded to dicts."""
         path = self.root / INDEX_FILE
         if not path.exists():
-            frame = pd.DataFrame({c: pd.Series(dtype=object if c in _TEXT else float) for c in INDEX_COLUMNS})
+            stored = sum(1 for f in (self.root / TRACES_DIR).glob("*.parquet"))
+            if stored:
+                raise CatalogError(f"index is missing while {TRACES_DIR}/ holds {stored} trace files", path=path,
+                                   hint="run `tracegen catalog verify --repair` to list them again")
+            frame = _empty_index()
         else:
             try:
                 frame = pq.read_table(path).to_pandas()
@@ -203,6 +223,12 @@ class Catalog:
         frame["tags"] = [json.loads(t) for t in frame["tags"]]
         frame["provenance"] = [json.loads(p) for p in frame["provenance"]]
         return frame.reset_index(drop=True)
+
+    def _index_or_none(self) -> pd.DataFrame | None:
+        try:
+            return self.index()
+        except CatalogError:
+            return None
 
     def rows(self, where: Sequence[str] = ()) -> list[dict[str, Any]]:
         """Index rows (plain dicts, NaN as None) of the traces that meet ``where``."""
@@ -251,7 +277,7 @@ class Catalog:
 
     # --- changing ---------------------------------------------------------------------------
     @contextlib.contextmanager
-    def _locked(self) -> Iterator[None]:
+    def _locked(self, *, recover: bool = True) -> Iterator[None]:
         try:
             fd = os.open(self.root / LOCK_FILE, os.O_RDWR | os.O_CREAT, 0o644)
         except OSError as exc:
@@ -259,7 +285,11 @@ class Catalog:
         try:
             fcntl.flock(fd, fcntl.LOCK_EX)
             _HELD_LOCKS.add(fd)
-            self._last_recovery = self._recover()
+            for place in (self.root, self.root / TRACES_DIR):  # a change must be able to finish once committed
+                if not os.access(place, os.W_OK | os.X_OK):
+                    raise CatalogError("is not writable, so nothing was changed", path=place,
+                                       hint="fix its permissions or work on a copy of the catalog")
+            self._last_recovery = self._recover() if recover else []
             yield
         finally:
             _HELD_LOCKS.discard(fd)
@@ -395,15 +425,29 @@ class Catalog:
 
     # --- checking ---------------------------------------------------------------------------
     def verify(self, *, repair: bool = False, progress: bool | None = None) -> VerifyReport:
-        """Check every file against its hash and content id; find orphans. ``repair`` removes them.
+        """Check every file against its hash and content id; find orphans. ``repair`` mends what it can.
 
         Problems: an index row whose file is missing, unreadable, or whose bytes or content do not match
-        the row; a file in ``traces/`` that no row lists (an orphan). Repair drops such rows and files.
+        the row; a file in ``traces/`` that no row lists (an orphan); an unreadable index. Repair drops
+        the bad rows and their files, lists again every orphan that is a whole trace under its own id (each
+        trace file carries its full metadata), removes the other orphans, and rebuilds an unreadable index
+        from the trace files after setting it aside as ``index.damaged.parquet``.
         """
         report = VerifyReport()
-        with self._locked():
-            report.recovered = list(self._last_recovery)
-            frame = self.index()
+        with self._locked(recover=False):  # recovery reads the index: first see that it can be read
+            frame = self._index_or_none()
+            if frame is None:
+                index_path = self.root / INDEX_FILE
+                report.problems.append(f"{INDEX_FILE}: " + ("unreadable" if index_path.exists() else "missing"))
+                if not repair:
+                    return report
+                if index_path.exists():
+                    os.replace(index_path, self.root / DAMAGED_INDEX_FILE)
+                    report.repaired.append(f"set the unreadable index aside as {DAMAGED_INDEX_FILE}")
+                _write_atomic(_index_table(_empty_index()), index_path)  # every trace file is now an orphan
+                frame = self.index()
+                report.repaired.append("rebuilt the index from the trace files")
+            report.recovered = self._recover()
             bad_ids: list[str] = []
             with bar(list(frame.itertuples(index=False)), label="verifying", enabled=progress) as rows:
                 for row in rows:
@@ -426,21 +470,28 @@ class Catalog:
                         bad_ids.append(row.id)
             listed = {f"{i}.parquet" for i in frame["id"]}
             orphans = sorted(f for f in (self.root / TRACES_DIR).iterdir() if f.name not in listed)
+            relisted = []
             for f in orphans:
-                report.problems.append(f"{TRACES_DIR}/{f.name}: orphan (no index row lists it)")
-            if repair and report.problems:
-                for f in orphans:
+                whole = _whole_trace_row(f)
+                report.problems.append(f"{TRACES_DIR}/{f.name}: orphan (no index row lists it"
+                                       + ("; the file is a whole trace)" if whole else ")"))
+                if repair and whole:
+                    relisted.append(whole)
+                    report.repaired.append(f"listed {TRACES_DIR}/{f.name} again from its own metadata")
+                elif repair:
                     if f.is_dir():
                         shutil.rmtree(f)
                     else:
                         f.unlink()
                     report.repaired.append(f"removed orphan {TRACES_DIR}/{f.name}")
+            if repair and (bad_ids or relisted):
                 for tid in bad_ids:
                     p = self.root / TRACES_DIR / f"{tid}.parquet"
                     if p.exists():
                         p.unlink()
                     report.repaired.append(f"dropped trace {tid} (its file was missing or damaged)")
-                self._commit([], drop_ids=bad_ids)
+                self._commit(relisted, drop_ids=bad_ids)
+                report.checked += len(relisted)
         return report
 
     # --- figures ----------------------------------------------------------------------------

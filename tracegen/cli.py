@@ -281,7 +281,7 @@ def verify(ctx: click.Context, repair: bool, as_json: bool, catalog_path: Path |
         for line in report.repaired:
             click.echo(f"repaired: {line}")
         click.echo(f"{report.checked} traces checked: "
-                   + ("consistent" if report.ok else f"{len(report.problems)} problems (try --repair)"))
+                   + (("consistent after repair" if report.repaired else "consistent") if report.ok else f"{len(report.problems)} problems (try --repair)"))
     if not report.ok:
         ctx.exit(1)
 
