@@ -115,6 +115,11 @@ def test_outages_are_a_state_of_their_own():
     (lambda d: d["states"][0].update(cov=[[-1.0]]), "covariance"),
     (lambda d: d["states"].reverse(), "ordered"),
     (lambda d: d["states"][1].update(level_bps=float("nan")), "finite"),
+    # hand edits of the wrong type: refused by name, never an internal error
+    (lambda d: d["states"].__setitem__(1, 5), r"states\[1\].*must be an object"),
+    (lambda d: d["states"][1].update(mean=5), r"mean must be a list"),
+    (lambda d: d["states"][1].update(rtt_log_ms=5), r"\[mean, sd\]"),
+    (lambda d: d.update(features=5), "not a valid model file"),
 ])
 def test_bad_model_files_are_refused(recovered, tmp_path, corrupt, needle):
     _, model = recovered
@@ -123,6 +128,13 @@ def test_bad_model_files_are_refused(recovered, tmp_path, corrupt, needle):
     path = tmp_path / "bad.json"
     path.write_text(json.dumps(data))
     with pytest.raises(ModelError, match=needle):
+        load(path)
+
+
+def test_a_deeply_nested_file_is_refused(tmp_path):
+    path = tmp_path / "deep.json"
+    path.write_text("[" * 100_000 + "]" * 100_000)
+    with pytest.raises(ModelError, match="nested too deeply"):
         load(path)
 
 

@@ -73,6 +73,8 @@ class StateModel:
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any], where: str, n_features: int) -> "StateModel":
+        if not isinstance(d, Mapping):
+            raise ModelError(f"must be an object, got {type(d).__name__}", field=where)
         kind = d.get("kind")
         if kind not in ("outage", "level"):
             raise ModelError(f"kind must be 'outage' or 'level', got {kind!r}", field=f"{where}.kind")
@@ -82,21 +84,26 @@ class StateModel:
         share = _finite(d.get("share"), f"{where}.share")
         if not 0 <= share <= 1:
             raise ModelError(f"must be in 0..1, got {share}", field=f"{where}.share")
-        dwell = DwellFit.from_dict(d.get("dwell") or {})
+        dwell = _part(DwellFit.from_dict, d.get("dwell") or {}, f"{where}.dwell")
         mean, cov, ar = (), (), None
         if kind == "level":
-            mean = tuple(_finite(v, f"{where}.mean") for v in (d.get("mean") or []))
-            cov = tuple(tuple(_finite(v, f"{where}.cov") for v in row) for row in (d.get("cov") or []))
+            raw_mean, raw_cov = d.get("mean") or [], d.get("cov") or []
+            if not isinstance(raw_mean, list) or not isinstance(raw_cov, list) or not all(
+                    isinstance(row, list) for row in raw_cov):
+                raise ModelError(f"mean must be a list and cov a list of lists of {n_features} numbers",
+                                 field=f"{where}.cov")
+            mean = tuple(_finite(v, f"{where}.mean") for v in raw_mean)
+            cov = tuple(tuple(_finite(v, f"{where}.cov") for v in row) for row in raw_cov)
             if len(mean) != n_features or len(cov) != n_features or any(len(r) != n_features for r in cov):
                 raise ModelError(f"needs a mean of {n_features} and a {n_features}x{n_features} covariance",
                                  field=f"{where}.cov")
             c = np.array(cov)
             if not np.allclose(c, c.T) or np.any(np.linalg.eigvalsh(c) <= 0):
                 raise ModelError("covariance must be symmetric with positive variances", field=f"{where}.cov")
-            ar = None if d.get("ar") is None else ARFit.from_dict(d["ar"])
+            ar = None if d.get("ar") is None else _part(ARFit.from_dict, d["ar"], f"{where}.ar")
         rtt = d.get("rtt_log_ms")
         if rtt is not None:
-            if len(rtt) != 2:
+            if not isinstance(rtt, list) or len(rtt) != 2:
                 raise ModelError("must be [mean, sd] of log RTT", field=f"{where}.rtt_log_ms")
             rtt = (_finite(rtt[0], f"{where}.rtt_log_ms"), _finite(rtt[1], f"{where}.rtt_log_ms", positive=True))
         loss = _finite(d.get("loss_mean"), f"{where}.loss_mean", allow_none=True)
@@ -186,8 +193,8 @@ class PathModel:
         shares = np.array([s.share for s in states])
         if not np.isclose(shares.sum(), 1.0, atol=1e-6):
             raise ModelError(f"state shares sum to {shares.sum():.6f}, not 1", field="states")
-        loss = None if d.get("loss") is None else GilbertElliott.from_dict(d["loss"])
-        events = None if d.get("events") is None else EventModel.from_dict(d["events"])
+        loss = None if d.get("loss") is None else _part(GilbertElliott.from_dict, d["loss"], "loss")
+        events = None if d.get("events") is None else _part(EventModel.from_dict, d["events"], "events")
         if events is not None and events.post_state_probs is not None and len(events.post_state_probs) != n:
             raise ModelError(f"has {len(events.post_state_probs)} probabilities for a model of {n} states",
                              field="events.post_state_probs", hint="refit the model with this tracegen version")
@@ -204,8 +211,10 @@ class PathModel:
     def summary_text(self) -> str:
         """A readable summary: the states table, loss and events."""
         r = self.report
+        hours = r.get("hours")
+        hours_text = f"{hours:.2f}" if isinstance(hours, (int, float)) and not isinstance(hours, bool) else "?"
         lines = [f"path model: {self.n_states} states at {self.step_s:g} s steps, features {', '.join(self.features)}",
-                 f"fitted on {r.get('traces', '?')} traces, {r.get('hours', float('nan')):.2f} h "
+                 f"fitted on {r.get('traces', '?')} traces, {hours_text} h "
                  f"({r.get('samples', '?')} samples), chosen by {r.get('criterion', '?')}",
                  f"{'state':>5}  {'kind':6}  {'level Mbit/s':>12}  {'spread':>7}  {'mean dwell s':>12}  "
                  f"{'dwell family':12}  {'share':>6}  {'AR':>3}  {'RTT ms':>7}  {'loss':>6}"]
@@ -236,13 +245,22 @@ class PathModel:
         else:
             lines.append("slow part: none")
         table = r.get("selection_table") or []
-        if table:
+        if isinstance(table, list) and table and all(
+                isinstance(row, Mapping) and {"states", "hmm_bic", "full_bic"} <= set(row) for row in table):
             lines.append("state-count selection:")
             for row in table:
                 mark = "*" if row.get("states") == self.report.get("level_states") else " "
                 lines.append(f" {mark} {row['states']} levels: HMM BIC {row['hmm_bic']:.1f}, "
                              f"full-model BIC {row['full_bic']:.1f}")
         return "\n".join(lines)
+
+
+def _part(build: Any, value: Any, where: str) -> Any:
+    """``build(value)`` with any error's field put under ``where`` (``states[2].dwell.params``)."""
+    try:
+        return build(value)
+    except TracegenError as exc:
+        raise ModelError(exc.message, field=f"{where}.{exc.field}" if exc.field else where, hint=exc.hint) from None
 
 
 def load(path: str | Path) -> PathModel:
@@ -258,10 +276,16 @@ def load(path: str | Path) -> PathModel:
         data = json.loads(text)
     except json.JSONDecodeError as exc:
         raise ModelError(f"is not valid JSON ({exc.msg})", path=path, line=exc.lineno) from None
+    except RecursionError:
+        raise ModelError("is nested too deeply to be a model file", path=path) from None
     try:
         return PathModel.from_dict(data)
     except TracegenError as exc:
         raise ModelError(exc.message, path=path, field=exc.field, hint=exc.hint) from None
+    except (TypeError, AttributeError, KeyError, IndexError, ValueError, OverflowError) as exc:
+        # a part of the right name but the wrong shape that no check above names more precisely
+        raise ModelError(f"is not a valid model file ({type(exc).__name__}: {exc})", path=path,
+                         hint="refit the model, or restore the file as the fit wrote it") from None
 
 
 def _plain(value: Any) -> Any:
