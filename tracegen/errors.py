@@ -54,6 +54,19 @@ def _rebuild(cls: type, message: str, path: str | None, line: int | None, field:
     return cls(message, path=path, line=line, field=field, hint=hint)
 
 
+def check_seed(seed: object, name: str = "seed") -> int:
+    """``seed`` as an int, or a TracegenError naming ``name`` unless it is an integer in 0 .. 2**32 - 1
+    (the range every random generator tracegen seeds accepts)."""
+    import numbers
+
+    if isinstance(seed, bool) or not isinstance(seed, numbers.Integral) or not 0 <= int(seed) <= MAX_SEED:
+        raise TracegenError(f"must be an integer from 0 to {MAX_SEED}, got {seed!r}", field=name)
+    return int(seed)
+
+
+MAX_SEED = 2**32 - 1
+
+
 class InputError(TracegenError):
     """A measured file or option that cannot be read as given."""
 

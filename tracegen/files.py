@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
 from pathlib import Path
 
@@ -17,6 +18,7 @@ def write_text_atomic(path: str | Path, text: str, *, error: type[TracegenError]
         tmp.write_text(text, encoding="utf-8")
         os.replace(tmp, path)
     except OSError as exc:
-        tmp.unlink(missing_ok=True)
+        with contextlib.suppress(OSError):  # e.g. the parent is a file: there is no temporary file to remove
+            tmp.unlink(missing_ok=True)
         raise error(f"cannot be written ({exc.strerror})", path=path) from None
     return path

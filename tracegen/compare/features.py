@@ -139,6 +139,10 @@ def prepare(traces: Sequence[Trace], step_s: float | None = None) -> Prepared:
         step = float(step_s)
         if not (math.isfinite(step) and step > 0):
             raise TracegenError(f"step {step_s!r} s must be a positive number", field="step_s")
+        finest = min((tr.step_s for tr in traces if len(tr) > 1), default=step)
+        if step < finest * (1 - _REL):  # finer than every trace: no detail to gain, only memory to lose
+            raise TracegenError(f"step {_fmt(step)} s is finer than every trace's own step (the finest is "
+                                f"{_fmt(finest)} s)", field="step_s", hint=f"give a step of at least {_fmt(finest)} s")
     out: list[Trace] = []
     moved: dict[str, int] = {}
     irregular = 0

@@ -36,7 +36,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from .. import __version__
-from ..errors import TracegenError
+from ..errors import TracegenError, check_seed
 from ..plainjson import plain
 from ..trace import Trace
 from . import distances as dist
@@ -440,6 +440,7 @@ def coverage(real: Sequence[Trace], synthetic: Sequence[Trace], *, scales_s: Seq
     wherever they run."""
     from ..parallel import runner
 
+    check_seed(seed)
     with runner(workers, cluster) as run:
         return _coverage(real, synthetic, scales_s=scales_s, step_s=step_s, splits=splits, seed=seed, k=k,
                          max_points=max_points, n_permutations=n_permutations, max_lag_s=max_lag_s, labels=labels,

@@ -43,7 +43,7 @@ from typing import Any, Sequence
 import numpy as np
 import pandas as pd
 
-from ..errors import TracegenError
+from ..errors import TracegenError, check_seed
 from ..files import write_text_atomic
 from ..trace import Trace
 from .cells import CellScheme, cell_table
@@ -428,6 +428,7 @@ def split(traces: Sequence[Trace], *, by: str = "group", parts: Sequence[float] 
     """Split ``traces`` into parts with whole groups on each side and every part's cell mix close to the
     whole's (module docstring). Same traces and seed give the same split."""
     traces = list(traces)
+    check_seed(seed)
     if not traces:
         raise TracegenError("no traces to split", field="traces", hint="check the selection or the folder")
     p = _check_parts(parts)

@@ -16,6 +16,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Mapping
 
+from ..errors import TracegenError, check_seed
 from .files import _READER, _SUFFIX, _reader_options, rtcp_reports, tags_of, write_sources
 from .radio import (SUB, a3_next, fading_power_mean, free_space_path_loss_db, gudmundson_shadowing_db,
                     log_distance_path_loss_db, shannon_capacity_bps)
@@ -95,6 +96,10 @@ class DemoReport:
         return "\n".join(out)
 
 
+MIN_SESSIONS, MAX_SESSIONS = 6, 1000          # fewer leave the demo's fit and splits too little to work with
+MIN_DURATION_S, MAX_DURATION_S = 300.0, 86400.0  # the reports' longest window scale; one day
+
+
 def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: float = 300,
                progress: bool | None = None, fit_model: bool = True, synthesise: bool = True) -> DemoReport:
     """Simulate the fleet, write its files under ``root/demo-sources`` and ingest them into the catalog at ``root``;
@@ -105,6 +110,13 @@ def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: flo
     from ..ingest import Labels
     from ..progress import bar
 
+    check_seed(seed)
+    if isinstance(sessions, bool) or not isinstance(sessions, int) or not MIN_SESSIONS <= sessions <= MAX_SESSIONS:
+        raise TracegenError(f"must be an integer from {MIN_SESSIONS} to {MAX_SESSIONS}, got {sessions!r}",
+                            field="sessions")
+    if not MIN_DURATION_S <= float(duration_s) <= MAX_DURATION_S:
+        raise TracegenError(f"must be from {MIN_DURATION_S:g} s to {MAX_DURATION_S:g} s, got {duration_s!r}",
+                            field="duration", hint="the demo's reports need windows of up to 300 s")
     root = Path(root)
     sims = simulate_fleet(seed, sessions, duration_s, progress)
     sources = root / "demo-sources"

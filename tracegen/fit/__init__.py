@@ -28,7 +28,7 @@ from typing import TYPE_CHECKING, Any, Iterable, Sequence
 import numpy as np
 
 from .. import __version__
-from ..errors import TracegenError
+from ..errors import TracegenError, check_seed
 from ..progress import bar
 from ..trace import OUTAGE_FLOOR_BPS, Trace
 from .ar import ARFit, ar_loglik, select_ar, with_stationary_variance
@@ -183,6 +183,7 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
     from ..model import PathModel, StateModel
 
     traces = list(traces)
+    check_seed(seed)
     if criterion not in CRITERIA:
         raise TracegenError(f"unknown criterion '{criterion}'", field="criterion", hint=f"use {' or '.join(CRITERIA)}")
     if restarts < 1 or max_iter < 1:

@@ -72,7 +72,7 @@ import numpy as np
 from scipy import linalg
 from scipy.signal import lfilter, lfiltic
 
-from ..errors import TracegenError
+from ..errors import TracegenError, check_seed
 from ..jitter import interarrival_jitter
 from .events import EventDraw, HandoverPlan, draw_events
 from .tilt import Tilt, TiltPlan, dwell_log_ratio, residual_log_ratio
@@ -768,9 +768,9 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
 
 def trace_generator(seed: int, index: int) -> np.random.Generator:
     """The sampler's Generator for trace ``index`` of a run with ``seed``: SeedSequence(seed, spawn_key=(index, 0))."""
-    for name, v in (("seed", seed), ("index", index)):
-        if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 0:
-            raise TracegenError(f"must be an integer >= 0, got {v!r}", field=name)
+    check_seed(seed)
+    if isinstance(index, bool) or not isinstance(index, (int, np.integer)) or index < 0:
+        raise TracegenError(f"must be an integer >= 0, got {index!r}", field="index")
     return np.random.default_rng(np.random.SeedSequence(int(seed), spawn_key=(int(index), STREAM_PART)))
 
 

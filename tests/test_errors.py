@@ -1,0 +1,47 @@
+"""User mistakes that must end in a TracegenError naming the field or path, never an internal error."""
+
+from __future__ import annotations
+
+import pytest
+
+import tracegen
+from tracegen import TracegenError
+from tracegen.compare.features import prepare
+from tracegen.curate.split import split
+from tracegen.demo import build_demo
+from tracegen.errors import MAX_SEED, check_seed
+from tracegen.files import write_text_atomic
+from tracegen.trace import Trace
+
+
+@pytest.mark.parametrize("seed", [-1, MAX_SEED + 1, 1.5, True, "7"])
+def test_seeds_outside_the_generators_range_are_refused_by_name(seed):
+    # numpy's legacy RandomState (which hmmlearn seeds) takes 0 .. 2**32 - 1 (numpy docs).
+    for call in (lambda: tracegen.fit([], seed=seed), lambda: tracegen.coverage([], [], seed=seed),
+                 lambda: split([], seed=seed), lambda: check_seed(seed)):
+        with pytest.raises(TracegenError) as info:
+            call()
+        assert info.value.field == "seed"
+
+
+def test_demo_checks_its_options_before_writing_anything(tmp_path):
+    for kw, name in (({"sessions": 0}, "sessions"), ({"duration_s": 5.0}, "duration"), ({"seed": -1}, "seed")):
+        with pytest.raises(TracegenError) as info:
+            build_demo(tmp_path / "d", **kw)
+        assert info.value.field == name
+    assert not (tmp_path / "d").exists()
+
+
+def test_a_step_finer_than_every_trace_is_refused_not_allocated():
+    tr = Trace.from_columns([0.0, 1.0, 2.0, 3.0], bandwidth_bps=[1e6, 2e6, 1e6, 2e6])
+    with pytest.raises(TracegenError, match="finer than every trace's own step") as info:
+        prepare([tr], 1e-9)
+    assert info.value.field == "step_s"
+    assert len(prepare([tr], 2.0).traces[0]) == 2
+
+
+def test_writing_below_a_file_names_the_path(tmp_path):
+    (tmp_path / "afile").write_text("x")
+    with pytest.raises(TracegenError, match="cannot be written") as info:
+        write_text_atomic(tmp_path / "afile" / "m.json", "{}")
+    assert info.value.path.endswith("m.json")
