@@ -108,6 +108,18 @@ def test_outages_are_a_state_of_their_own():
     assert all(np.isfinite(v) for s in model.states[1:] for v in s.mean)  # no log(0) anywhere
 
 
+def test_a_constant_rtt_fits_to_a_finite_model(tmp_path):
+    # A fixed-latency path (an emulator, a wired hop) has no RTT variance left given the bandwidth.
+    rng = np.random.default_rng(8)
+    traces = [Trace.from_columns(tr["t_s"], bandwidth_bps=tr["bandwidth_bps"], rtt_ms=np.full(len(tr), 30.0))
+              for tr in (sample_trace(rng, 600) for _ in range(3))]
+    model = tracegen.fit(traces, states=2, restarts=1, with_rtt=True)
+    model.save(tmp_path / "m.json")
+    again = load(tmp_path / "m.json")
+    assert all(np.isfinite(v) for st in again.states for v in st.mean)
+    assert np.isfinite(again.report["full_loglik"])
+
+
 @pytest.mark.parametrize("corrupt, needle", [
     (lambda d: d.update(format="something-else"), "format"),
     (lambda d: d.update(schema_version=99), "schema version"),

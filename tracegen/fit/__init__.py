@@ -45,6 +45,7 @@ if TYPE_CHECKING:
 
 CRITERIA = ("full-bic", "hmm-bic")
 DEFAULT_STATES = tuple(range(2, 9))
+_MIN_RTT_VAR = 1e-6  # floor of the conditional log-RTT variance (a constant RTT has none)
 
 
 @dataclass(frozen=True)
@@ -116,7 +117,7 @@ def _candidate(prep: Prepared, hmm: HmmFit, with_outage: bool, max_ar_order: int
             x = np.concatenate(rtt_terms)
             c = hmm.covars[j]
             slope = c[0, 1] / c[0, 0]
-            var = c[1, 1] - c[0, 1] ** 2 / c[0, 0]
+            var = max(c[1, 1] - c[0, 1] ** 2 / c[0, 0], _MIN_RTT_VAR)  # an RTT that never moves: no log(0)
             r = x[:, 1] - hmm.means[j, 1] - slope * (x[:, 0] - hmm.means[j, 0])
             loglik += -0.5 * float(np.sum(np.log(2 * np.pi * var) + r**2 / var))
     jumps = jump_matrix(seg, n_total)
