@@ -91,6 +91,17 @@ def test_mtu_bounds_of_rfc_791(mtu, ok):
             tc_script(trace([1e6, 2e6]), mtu=mtu)
 
 
+def test_byte_fields_beyond_32_bits_are_refused():
+    # tbf's struct tc_tbf_qopt holds buffer and limit as __u32 (linux/pkt_sched.h, from memory).
+    assert "limit 250000000 " in tc_script(trace([1e9, 1e9]), queue_ms=2000)  # 1 Gbit/s x 2 s = 2.5e8 bytes
+    with pytest.raises(TracegenError, match="32-bit") as info:
+        tc_script(trace([1e9, 1e9]), queue_ms=36e6)  # 10 h of queue
+    assert info.value.field == "queue_ms"
+    with pytest.raises(TracegenError, match="32-bit") as info:
+        tc_script(trace([1e15, 1e15]))
+    assert info.value.field == "bandwidth_bps"
+
+
 def test_script_is_valid_bash_and_refuses_to_overwrite(tmp_path):
     path = write_tc_script(trace([1e6, 2e6, 3e6]), tmp_path / "r.sh")
     assert subprocess.run(["bash", "-n", str(path)]).returncode == 0

@@ -123,6 +123,9 @@ def plan_steps(trace: Trace, *, min_step_s: float = MIN_STEP_S, nan: str = "erro
                  outage[change], end)
 
 
+TC_MAX_BYTES = 2**32 - 1  # tbf and htb take burst and limit as u32 bytes (linux/pkt_sched.h)
+
+
 def _check(qdisc: str, mtu: int, floor_bps: float, queue_ms: float) -> None:
     if qdisc not in QDISCS:
         raise TracegenError(f"unknown qdisc '{qdisc}'", field="qdisc", hint=f"one of {', '.join(QDISCS)}")
@@ -138,6 +141,14 @@ def _check(qdisc: str, mtu: int, floor_bps: float, queue_ms: float) -> None:
 def _buckets(rate_bps: np.ndarray, mtu: int, queue_ms: float) -> tuple[np.ndarray, np.ndarray]:
     burst = np.full(rate_bps.size, max(int(np.ceil(rate_bps.max() / 8 * BURST_S)), 2 * mtu), dtype=np.int64)
     limit = np.maximum(np.ceil(rate_bps / 8 * queue_ms / 1000.0), 2 * burst).astype(np.int64)
+    if burst.max(initial=0) > TC_MAX_BYTES:
+        raise TracegenError(f"the highest rate, {rate_bps.max():.4g} bit/s, needs a {int(burst[0])}-byte burst, more "
+                            f"than tc's 32-bit byte fields hold ({TC_MAX_BYTES})", field="bandwidth_bps",
+                            hint="check the trace's bandwidth unit")
+    if limit.max(initial=0) > TC_MAX_BYTES:
+        raise TracegenError(f"a {queue_ms:g} ms queue at {rate_bps.max():.4g} bit/s is {int(limit.max())} bytes, more "
+                            f"than tc's 32-bit byte fields hold ({TC_MAX_BYTES})", field="queue_ms",
+                            hint="give a shorter queue")
     return burst, limit
 
 
