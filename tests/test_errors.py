@@ -45,3 +45,26 @@ def test_writing_below_a_file_names_the_path(tmp_path):
     with pytest.raises(TracegenError, match="cannot be written") as info:
         write_text_atomic(tmp_path / "afile" / "m.json", "{}")
     assert info.value.path.endswith("m.json")
+
+
+def test_outputs_are_checked_before_any_work(tmp_path):
+    from tracegen.files import refuse_existing
+
+    out = tmp_path / "gap.json"
+    with pytest.raises(TracegenError, match="two outputs"):
+        refuse_existing(out, tmp_path / "." / "gap.json", force=True)
+    refuse_existing(out, None, tmp_path / "gap.html", force=False)
+    out.write_text("{}")
+    with pytest.raises(TracegenError, match="exists already"):
+        refuse_existing(out, force=False)
+    refuse_existing(out, force=True)
+
+
+def test_split_parts_with_an_empty_item_are_a_typo(tmp_path):
+    from click.testing import CliRunner
+
+    from tracegen.cli import cli
+
+    res = CliRunner().invoke(cli, ["split", "--catalog", str(tmp_path), "--parts", "0.7,,0.3", "--out",
+                                   str(tmp_path / "s.csv")])
+    assert res.exit_code != 0 and "is not a list of numbers" in res.output

@@ -573,15 +573,19 @@ def scenario_keys() -> None:
 @click.option("--splits", default=10, show_default=True, help="Seeded group splits of the real set for the noise floor.")
 @click.option("--seed", default=0, show_default=True, help="Seed of the splits and subsamples.")
 @click.option("-k", "--neighbours", "k", default=5, show_default=True, help="k of the k-NN metrics.")
+@click.option("--force", is_flag=True, help="Replace --json and --html files that exist.")
 @_parallel_options
 @click.pass_context
 def coverage_cmd(ctx: click.Context, catalog_path: Path | None, real: tuple[str, ...], synthetic: tuple[str, ...],
                  json_path: Path | None, html_path: Path | None, scales: str, step: str | None, splits: int,
-                 seed: int, k: int, workers: int | None, cluster: str | None) -> None:
+                 seed: int, k: int, force: bool, workers: int | None, cluster: str | None) -> None:
     """How far the synthetic traces are from the field, beside the field's own noise floor."""
     from .compare import coverage
     from .compare.inputs import resolve
+    from .files import refuse_existing
     from .units import parse_duration_s
+
+    refuse_existing(json_path, html_path, force=force)
 
     try:
         scale_list = [parse_duration_s(v.strip(), "--scales") for v in scales.split(",") if v.strip()]

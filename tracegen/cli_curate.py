@@ -8,6 +8,7 @@ import click
 
 from .cli import _catalog_option, _catalog_root, _open, cli
 from .errors import TracegenError
+from .files import refuse_existing
 
 
 def _scheme_options(f):
@@ -37,12 +38,6 @@ def _side(ctx: click.Context, catalog_path: Path | None, spec: tuple[str, ...], 
     from .compare.inputs import resolve
 
     return resolve(_catalog_root(ctx, catalog_path), spec, side)
-
-
-def _refuse_existing(*paths: Path | None, force: bool) -> None:
-    for p in paths:
-        if p is not None and p.exists() and not force:
-            raise TracegenError("exists already", path=p, hint="pass --force to replace it")
 
 
 def _write(json_path: Path | None, html_path: Path | None, result) -> None:
@@ -75,14 +70,17 @@ def _write(json_path: Path | None, html_path: Path | None, result) -> None:
 @click.option("--min-expected", default=5.0, show_default=True,
               help="Flag a cell empty or thin only when it expects at least this many windows.")
 @click.option("--no-duplicates", is_flag=True, help="Skip the search for duplicates and near copies.")
+@click.option("--force", is_flag=True, help="Replace --json and --html files that exist.")
 @click.pass_context
 def audit_cmd(ctx: click.Context, selection: tuple[str, ...], catalog_path: Path | None, where: tuple[str, ...],
               against: tuple[str, ...], mix_path: Path | None, json_path: Path | None, html_path: Path | None,
               scale: str, dims: str | None, bins: tuple[str, ...], step: str | None, thin_ratio: float,
-              min_expected: float, no_duplicates: bool) -> None:
+              min_expected: float, no_duplicates: bool, force: bool) -> None:
     """What a corpus holds, what it repeats and where it is thin."""
     from .curate.audit import audit
     from .curate.mix import read_mix
+
+    refuse_existing(json_path, html_path, force=force)
 
     scheme = _scheme(scale, dims, bins)
     mix = None if mix_path is None else read_mix(mix_path, scheme)
@@ -122,11 +120,11 @@ def split_cmd(ctx: click.Context, selection: tuple[str, ...], catalog_path: Path
     from .files import write_text_atomic
 
     try:
-        shares = [float(x) for x in parts.split(",") if x.strip()]
+        shares = [float(x) for x in parts.split(",")]  # an empty item ("0.7,,0.3") is a typo, not a skip
     except ValueError:
         raise TracegenError(f"'{parts}' is not a list of numbers", field="--parts", hint="e.g. 0.7,0.15,0.15") from None
     name_list = None if names is None else [x.strip() for x in names.split(",")]
-    _refuse_existing(out, force=force)
+    refuse_existing(out, json_path, force=force)
     traces, _ = _side(ctx, catalog_path, selection + where, "selection")
     result = split(traces, by=by, parts=shares, names=name_list, seed=seed, scheme=_scheme(scale, dims, bins),
                    step_s=_step(step))

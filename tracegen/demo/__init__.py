@@ -97,7 +97,7 @@ class DemoReport:
 
 
 MIN_SESSIONS, MAX_SESSIONS = 6, 1000          # fewer leave the demo's fit and splits too little to work with
-MIN_DURATION_S, MAX_DURATION_S = 300.0, 86400.0  # the reports' longest window scale; one day
+MIN_DURATION_S, MAX_DURATION_S = 60.0, 86400.0  # a 60 s window for the reports at least; one day
 
 
 def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: float = 300,
@@ -116,7 +116,7 @@ def build_demo(root: Path, *, seed: int = 7, sessions: int = 36, duration_s: flo
                             field="sessions")
     if not MIN_DURATION_S <= float(duration_s) <= MAX_DURATION_S:
         raise TracegenError(f"must be from {MIN_DURATION_S:g} s to {MAX_DURATION_S:g} s, got {duration_s!r}",
-                            field="duration", hint="the demo's reports need windows of up to 300 s")
+                            field="duration", hint="the demo's reports need at least one 60 s window per session")
     root = Path(root)
     sims = simulate_fleet(seed, sessions, duration_s, progress)
     sources = root / "demo-sources"
