@@ -132,6 +132,9 @@ def test_a_constant_rtt_fits_to_a_finite_model(tmp_path):
     (lambda d: d["states"][1].update(mean=5), r"mean must be a list"),
     (lambda d: d["states"][1].update(rtt_log_ms=5), r"\[mean, sd\]"),
     (lambda d: d.update(features=5), "not a valid model file"),
+    (lambda d: d.update(schema_version=float(d["schema_version"])), "schema version"),
+    (lambda d: d.update(outage_floor_bps=-5), "outage_floor_bps|>= 0"),
+    (lambda d: d["states"][1].update(loss_mean=5.0), "share in 0..1"),
 ])
 def test_bad_model_files_are_refused(recovered, tmp_path, corrupt, needle):
     _, model = recovered

@@ -107,6 +107,8 @@ class StateModel:
                 raise ModelError("must be [mean, sd] of log RTT", field=f"{where}.rtt_log_ms")
             rtt = (_finite(rtt[0], f"{where}.rtt_log_ms"), _finite(rtt[1], f"{where}.rtt_log_ms", positive=True))
         loss = _finite(d.get("loss_mean"), f"{where}.loss_mean", allow_none=True)
+        if loss is not None and not 0 <= loss <= 1:
+            raise ModelError(f"must be a share in 0..1, got {loss}", field=f"{where}.loss_mean")
         return cls(kind, level, share, dwell, mean, cov, ar, rtt, loss)
 
 
@@ -161,11 +163,13 @@ class PathModel:
             raise ModelError(f"format is {d.get('format')!r}, not {FORMAT_NAME!r}", field="format",
                              hint="is this a tracegen model file?")
         version = d.get("schema_version")
-        if isinstance(version, bool) or version not in READABLE_VERSIONS:
+        if not isinstance(version, int) or isinstance(version, bool) or version not in READABLE_VERSIONS:
             raise ModelError(f"schema version {version!r} is not one of {list(READABLE_VERSIONS)}",
                              field="schema_version", hint="refit with this tracegen version")
         step = _finite(d.get("step_s"), "step_s", positive=True)
         floor = _finite(d.get("outage_floor_bps"), "outage_floor_bps")
+        if floor < 0:
+            raise ModelError(f"must be >= 0 bit/s, got {floor}", field="outage_floor_bps")
         features = tuple(d.get("features") or ())
         if features not in (("log_bandwidth_bps",), ("log_bandwidth_bps", "log_rtt_ms")):
             raise ModelError(f"unknown features {list(features)}", field="features")
