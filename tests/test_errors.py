@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import pytest
 
 import tracegen
@@ -68,3 +70,19 @@ def test_split_parts_with_an_empty_item_are_a_typo(tmp_path):
     res = CliRunner().invoke(cli, ["split", "--catalog", str(tmp_path), "--parts", "0.7,,0.3", "--out",
                                    str(tmp_path / "s.csv")])
     assert res.exit_code != 0 and "is not a list of numbers" in res.output
+
+
+def test_a_trace_too_long_to_draw_in_memory_is_refused_up_front(tmp_path):
+    from click.testing import CliRunner
+
+    from tracegen.cli import cli
+    from tracegen.synth.sampler import MAX_TRACE_SAMPLES, check_trace_size
+
+    check_trace_size(MAX_TRACE_SAMPLES * 0.01, 0.01)
+    with pytest.raises(TracegenError, match="samples per trace") as info:
+        check_trace_size(1e12, 1.0)
+    assert info.value.field == "duration_s"
+    model = Path(__file__).resolve().parents[1] / "models" / "quillon-lte.json"
+    res = CliRunner().invoke(cli, ["synth", str(model), "--count", "1", "--duration", "1e12", "--out",
+                                   str(tmp_path / "out")])
+    assert res.exit_code != 0 and "samples per trace" in res.output and not (tmp_path / "out").exists()

@@ -28,7 +28,7 @@ from ..trace import Trace
 from .bottleneck import Bottleneck
 from .crosstraffic import CrossTraffic
 from .events import HandoverPlan, check_events
-from .sampler import MIN_STEP_S, sample_trace
+from .sampler import MIN_STEP_S, check_trace_size, sample_trace
 from .tilt import Tilt, TiltPlan
 
 STREAM_SAMPLER, STREAM_CROSS, STREAM_QUEUE = 0, 1, 2
@@ -87,6 +87,7 @@ def check_run(model: Any, count: int, duration_s: float, step_s: float, seed: in
                             hint="dwell times are in seconds, so any step from 10 ms up works")
     if step_s > duration_s:
         raise TracegenError(f"step {step_s:g} s is longer than the duration {duration_s:g} s", field="step_s")
+    check_trace_size(duration_s, step_s)
     for name, value, cls in (("cross_traffic", cross_traffic, CrossTraffic), ("bottleneck", bottleneck, Bottleneck),
                              ("handover", handover, HandoverPlan), ("tilt", tilt, Tilt)):
         if value is not None and not isinstance(value, cls):

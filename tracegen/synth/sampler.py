@@ -78,6 +78,7 @@ from .events import EventDraw, HandoverPlan, draw_events
 from .tilt import Tilt, TiltPlan, dwell_log_ratio, residual_log_ratio
 
 MIN_STEP_S = 0.01
+MAX_TRACE_SAMPLES = 10**8  # one trace is drawn whole in memory (some 5 GB at this size): longer runs use more traces
 STREAM_PART = 0  # spawn_key=(index, STREAM_PART): the sampler's stream in tracegen.synth.trace_rng
 _EPS = 1e-9
 _REL = 1e-12
@@ -624,6 +625,14 @@ def _tick_counts(n_samples: np.ndarray, ratio: float) -> tuple[np.ndarray, np.nd
     return ticks, (hi - lo).astype(np.int64)
 
 
+def check_trace_size(duration_s: float, step_s: float) -> None:
+    """A TracegenError when one trace of ``duration_s`` at ``step_s`` exceeds ``MAX_TRACE_SAMPLES`` samples."""
+    if duration_s / step_s > MAX_TRACE_SAMPLES:
+        raise TracegenError(f"{duration_s:g} s at {step_s:g} s steps is {duration_s / step_s:.3g} samples per trace, "
+                            f"more than {MAX_TRACE_SAMPLES:.0e}", field="duration_s",
+                            hint="make more, shorter traces, or use a longer step")
+
+
 def _check_args(model: Any, duration_s: float, step_s: float, start_state: int | None,
                 handover: HandoverPlan | None) -> None:
     for name, v in (("duration_s", duration_s), ("step_s", step_s)):
@@ -634,6 +643,7 @@ def _check_args(model: Any, duration_s: float, step_s: float, start_state: int |
     if step_s < MIN_STEP_S * (1 - 1e-9):
         raise TracegenError(f"must be at least {MIN_STEP_S} s (10 ms), got {step_s}", field="step_s",
                             hint="use a step of 10 ms or more; any value from there up works")
+    check_trace_size(duration_s, step_s)
     if start_state is not None:
         if isinstance(start_state, bool) or not isinstance(start_state, (int, np.integer)) \
                 or not 0 <= start_state < model.n_states:

@@ -32,6 +32,7 @@ from ..units import parse_duration_s
 from .bottleneck import Bottleneck
 from .crosstraffic import CrossTraffic
 from .events import HandoverPlan
+from .sampler import check_trace_size
 from .tilt import Tilt
 
 if sys.version_info >= (3, 11):
@@ -287,6 +288,10 @@ def load_scenario(path: str | Path | None, settings: Mapping[str, Any] | None = 
     if step > duration:
         raise ScenarioError(f"step {step:g} s is longer than the duration {duration:g} s", field="step_s",
                             path=where)
+    try:
+        check_trace_size(duration, step)
+    except TracegenError as exc:
+        raise ScenarioError(exc.message, field=exc.field, path=where, hint=exc.hint) from None
     out = raw.get("output") or {}
     if not isinstance(out, Mapping):
         raise ScenarioError("must be a table", field="output", path=where)
