@@ -21,17 +21,33 @@ LOCATION_DECIMALS = 2
 
 _PERSONAL_NAME = re.compile(
     r"(^|[_\-. ])(ip|ipv4|ipv6|addr|address|src|dst|host|hostname|mac|imsi|imei|msisdn|iccid|phone|"
-    r"subscriber|user|username|device|device_id|deviceid|id|ue_id|cname|email|lat|latitude|lon|lng|"
-    r"longitude|gps|location)([_\-. ]|$)",
+    r"subscriber|user|username|userid|uid|uuid|account|device|device_id|deviceid|id|ue_id|serial|sn|bssid|"
+    r"macaddr|ipaddr|cname|email|lat|latitude|lon|lng|longitude|gps|location)([_\-. ]|$)",
     re.IGNORECASE,
 )
+_CAMEL_BREAK = re.compile(r"(?<=[a-z0-9])(?=[A-Z])")  # userId -> user_Id, srcIP -> src_IP
+_MAC = re.compile(r"[0-9a-fA-F]{2}(?:([:-])[0-9a-fA-F]{2})(?:\1[0-9a-fA-F]{2}){4}")
 _IPV4 = re.compile(r"\b(?:\d{1,3}\.){3}\d{1,3}\b")
 _IPV6 = re.compile(r"(?<![0-9A-Za-z:])[0-9a-fA-F]{0,4}(?::[0-9a-fA-F]{0,4}){2,7}(?![0-9A-Za-z:])")
 
 
 def is_personal_field(name: str) -> bool:
-    """True when a column or key name suggests an identifier or a location."""
-    return bool(_PERSONAL_NAME.search(name.strip()))
+    """True when a column or key name suggests an identifier or a location (``user_id``, ``userId``)."""
+    return bool(_PERSONAL_NAME.search(_CAMEL_BREAK.sub("_", name.strip())))
+
+
+def is_address(value: str) -> bool:
+    """True when a whole value is an IPv4, IPv6 or MAC address."""
+    text = value.strip()
+    return bool(_IPV4.fullmatch(text) or _MAC.fullmatch(text)) or scrub_text(text) == "<address>"
+
+
+def identifier(value: str, name: str, keep_personal: bool) -> str:
+    """A label value as stored: its pseudonym when the column ``name`` looks personal or the value is an
+    address, else the value itself (always the value with ``keep_personal``)."""
+    if keep_personal or not (is_personal_field(name) or is_address(value)):
+        return value
+    return pseudonym(value)
 
 
 def pseudonym(value: str, *, salt: str = "tracegen") -> str:
