@@ -2,13 +2,17 @@
 
 from __future__ import annotations
 
+import gzip
+
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from conftest import snapshot
 from tracegen import InputError, TracegenError
-from tracegen.ingest import Labels, describe_file, read_file
+from tracegen.catalog import Catalog
+from tracegen.ingest import FORMATS, Labels, common, describe_file, read_file
 from tracegen.privacy import pseudonym
 
 KBPS_LOG = (
@@ -48,6 +52,45 @@ def test_personal_fields_are_coarsened_or_pseudonymised(write):
                         bandwidth_column="throughput_kbps", bandwidth_unit="kbps")
     assert "lat_deg" not in plain.columns and plain.group == "log"
     assert "robot_id" in plain.provenance["columns_not_read"]
+
+
+def test_ids_in_split_columns_camel_case_names_and_address_values_are_pseudonymised(write):
+    text = ("time_ms,kbps,robotId,clientIp,site\n"
+            "1000,500,QR-122,192.0.2.7,north\n2000,600,QR-122,192.0.2.7,north\n"
+            "3000,600,QR-999,192.0.2.8,north\n4000,600,QR-999,192.0.2.8,north\n")
+    path = write("p.csv", text)
+    opts = dict(time_column="time_ms", time_unit="ms", bandwidth_column="kbps", bandwidth_unit="kbps")
+    traces = read_file(path, "csv", Labels(), split_column="robotId", tag_columns=("clientIp", "site"), **opts)
+    assert [tr.provenance["part"] for tr in traces] == [f"robotId={pseudonym('QR-122')}",
+                                                        f"robotId={pseudonym('QR-999')}"]
+    assert traces[0].tags == {"clientIp": pseudonym("192.0.2.7"), "site": "north"}
+    assert all("QR-" not in repr(tr.meta()) and "192.0.2" not in repr(tr.meta()) for tr in traces)
+    kept = read_file(path, "csv", Labels(keep_personal=True), split_column="robotId", **opts)
+    assert kept[0].provenance["part"] == "robotId=QR-122"
+
+
+def test_a_group_that_changes_inside_one_trace_is_refused(write):
+    path = write("g.csv", "time_ms,kbps,robot_id\n1000,500,R-1\n2000,600,R-1\n3000,600,R-2\n")
+    with pytest.raises(InputError, match="changes from 'R-1' to 'R-2' within one trace") as info:
+        read_file(path, "csv", Labels(), time_column="time_ms", time_unit="ms", bandwidth_column="kbps",
+                  bandwidth_unit="kbps", group_column="robot_id")
+    assert info.value.line == 4 and "--split-column robot_id" in info.value.hint
+
+
+def test_a_failed_first_ingest_leaves_no_catalog(write, tmp_path):
+    from click.testing import CliRunner
+
+    from tracegen.cli import cli
+
+    bad = write("one.csv", "t_s,bandwidth_bps\n0,1\n")
+    root = tmp_path / "new-catalog"
+    res = CliRunner().invoke(cli, ["ingest", "--catalog", str(root), "--format", "csv", str(bad)])
+    assert res.exit_code != 0 and not root.exists()
+    root.mkdir()
+    (root / "notes.txt").write_text("mine")
+    res = CliRunner().invoke(cli, ["ingest", "--catalog", str(root), "--format", "csv", "--skip-bad", str(bad)])
+    assert res.exit_code == 1  # every file was bad: nothing to show for the run
+    assert sorted(p.name for p in root.iterdir()) == ["notes.txt"]
 
 
 def test_bytes_per_interval_hand_computed(write):
@@ -126,6 +169,95 @@ def test_loss_above_one(write):
     assert info.value.line == 3
 
 
+def test_loss_out_of_range_is_reported_as_given_in_its_unit(write):
+    path = write("pct.csv", "t_s,bandwidth_bps,loss_pct\n0,1,10\n1,1,150\n")
+    with pytest.raises(InputError) as info:
+        read_file(path, "csv", loss_column="loss_pct", loss_unit="percent")
+    msg = str(info.value)
+    assert (info.value.line, info.value.field) == (3, "loss_pct") and str(path) in msg
+    assert "loss 150 is outside 0..100" in msg  # the file's value, not 1.5
+    assert "if the file has percent" not in msg  # percent was given already
+
+
+def test_glitched_time_is_refused_with_its_line(write, tmp_path):
+    # one row at 0 ms among epoch milliseconds: the trace would span 56 years of 1 s steps
+    rows = "".join(f"{1778865729000 + i * 1000},1000\n" for i in range(1, 121))
+    path = write("glitch.csv", "time_ms,kbps\n0,1000\n" + rows)
+    opts = dict(time_column="time_ms", time_unit="ms", bandwidth_column="kbps", bandwidth_unit="kbps")
+    with pytest.raises(InputError) as info:
+        read_file(path, "csv", **opts)
+    msg = str(info.value)
+    assert (info.value.line, info.value.field) == (3, "time_ms") and str(path) in msg
+    assert "jumps by 1.77887e+09 s after line 2" in msg and "more than 16777216 steps of its 1 s step" in msg
+    assert "wrong time unit" in msg and "split the file" in msg
+    # the catalog is left as it was
+    cat = Catalog.open(tmp_path / "cat", create=True)
+    cat.ingest([write("ok.csv", "t_s,bandwidth_bps\n0,1\n1,2\n")], "csv")
+    before = snapshot(tmp_path / "cat")
+    with pytest.raises(InputError, match="glitch.csv:3"):
+        cat.ingest([path], "csv", **opts)
+    assert snapshot(tmp_path / "cat") == before
+
+
+def test_absurd_time_span_is_refused(write):
+    with pytest.raises(InputError) as info:
+        read_file(write("big.csv", "t_s,bandwidth_bps\n0,1\n1,1\n1e300,1\n"), "csv")
+    assert info.value.line == 4 and "more than 4.29497e+09 s (136 years)" in str(info.value)
+
+
+def test_span_is_bounded_in_steps_not_only_by_jumps(write, monkeypatch):
+    # no single jump, but more steps than the grid later analysis builds may hold (bound lowered to 100)
+    monkeypatch.setattr(common, "MAX_STEPS", 100)
+    path = write("long.csv", "t_s,bandwidth_bps\n" + "".join(f"{i},1\n" for i in range(150)))
+    with pytest.raises(InputError) as info:
+        read_file(path, "csv")
+    assert info.value.line == 103  # header on line 1, t = 101 s on line 103
+    assert "time reaches 101 s after the first sample, more than 100 steps of its 1 s step" in str(info.value)
+    monkeypatch.setattr(common, "MAX_STEPS", 150)
+    [tr] = read_file(path, "csv")
+    assert len(tr) == 150
+
+
+def test_single_sample_is_refused(write):
+    with pytest.raises(InputError) as info:
+        read_file(write("one.csv", "t_s,bandwidth_bps\n0,100\n"), "csv")
+    assert (info.value.line, info.value.field) == (2, "t_s") and "holds a single sample" in str(info.value)
+    text = "t_s,bandwidth_bps,segment\n0,1,a\n1,2,a\n5,3,b\n"
+    with pytest.raises(InputError, match=r"holds a single sample \(segment=b\)") as info:
+        read_file(write("s.csv", text), "csv", split_column="segment")
+    assert info.value.line == 4
+
+
+def test_epoch_nanoseconds_keep_their_precision(write):
+    path = write("ns.csv", "ts,bw\n1778865729000000000,100\n1778865729000000100,100\n1778865729000000250,100\n")
+    [tr] = read_file(path, "csv", time_column="ts", time_unit="ns", bandwidth_column="bw")
+    # float64 of the raw numbers (53 bits) would make all three times equal
+    np.testing.assert_allclose(tr["t_s"], [0.0, 100e-9, 250e-9], rtol=1e-15, atol=0)
+    assert tr.step_s == pytest.approx(125e-9, rel=1e-12)
+
+
+def test_empty_bandwidth_column_is_refused(write):
+    path = write("e.csv", "t,kbps,rtt\n0,,\n1, ,\n")
+    with pytest.raises(InputError) as info:
+        read_file(path, "csv", time_column="t", bandwidth_column="kbps", rtt_column="rtt")
+    msg = str(info.value)
+    assert (info.value.line, info.value.field) == (2, "kbps") and str(path) in msg
+    assert "bandwidth is empty on every row, and so is rtt" in msg and "--bandwidth-column" in msg
+    # RTT without bandwidth is data (a ping-like log, or tracegen's own CSV of a ping trace)
+    [tr] = read_file(write("r.csv", "t_s,bandwidth_bps,rtt_ms\n0,,20\n1,,21\n"), "csv")
+    assert np.isnan(tr["bandwidth_bps"]).all() and tr["rtt_ms"].tolist() == [20.0, 21.0]
+
+
+@pytest.mark.parametrize("fmt", sorted(FORMATS))
+def test_compressed_file_says_so(write, fmt):
+    path = write("log.gz", gzip.compress(b"t_s,bandwidth_bps\n0,1\n1,2\n"))
+    with pytest.raises(InputError) as info:
+        read_file(path, fmt)
+    msg = str(info.value)
+    assert info.value.line == 1 and str(path) in msg
+    assert "is gzip-compressed" in msg and "gunzip -k log.gz" in msg and "UTF-8" not in msg
+
+
 def test_unknown_units_list_the_known_ones(write):
     path = write("u.csv", "t_s,bandwidth_bps\n0,1\n")
     with pytest.raises(InputError, match="unknown bandwidth unit 'mbit'.*Mbps"):
@@ -173,8 +305,10 @@ def test_two_gigabyte_line_is_refused_without_reading_it(tmp_path):
 
 
 def test_option_of_another_format_is_refused(write):
-    with pytest.raises(InputError, match="--clock-rate-hz does not apply to format 'csv'"):
+    with pytest.raises(InputError, match="--clock-rate-hz does not apply to format 'csv'") as info:
         read_file(write("o.csv", "t_s,bandwidth_bps\n0,1\n"), "csv", clock_rate_hz=90000)
+    assert info.value.hint.endswith(", --interval")  # the flags as the command line spells them
+    assert "--interval-s" not in str(info.value)
 
 
 @settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])

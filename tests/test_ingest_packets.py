@@ -189,6 +189,10 @@ def test_empty_short_and_non_utf8(tmp_path):
     p.write_text("0,100\n0.2,100\n")  # 0.2 s of arrivals: less than half of one 1 s bin
     with pytest.raises(InputError, match="less than half"):
         read_file(p, "packets")
+    p.write_text("0,100\n0.5,100\n1.2,100\n")  # 1.2 s: the second bin is covered less than half
+    with pytest.raises(InputError, match="covers 1.2 s, a single 1 s interval") as e:
+        read_file(p, "packets")
+    assert e.value.line == 3 and "--interval" in str(e.value) and "interval_s" not in str(e.value)
     p.write_bytes(b"0,100\n1,100\n2,\xff\n")
     with pytest.raises(InputError) as e:
         read_file(p, "packets")

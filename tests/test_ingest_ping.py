@@ -174,6 +174,23 @@ def test_bad_transcripts(tmp_path, text, line):
     assert e.value.path == str(p)
 
 
+def test_single_probe_is_refused(tmp_path):
+    # one probe is one sample: no step, so no trace (the catalog listing could not show one)
+    p = write_text(tmp_path, "PING h (192.0.2.1) 56(84) bytes of data.\n"
+                             "64 bytes from 192.0.2.1: icmp_seq=1 ttl=64 time=11.2 ms\n")
+    with pytest.raises(InputError, match="holds a single sample") as e:
+        read_file(p, "ping")
+    assert (e.value.path, e.value.line) == (str(p), 2)
+    # the second run of a file is named
+    p = write_text(tmp_path, "64 bytes from 192.0.2.1: icmp_seq=1 ttl=64 time=1.0 ms\n"
+                             "64 bytes from 192.0.2.1: icmp_seq=2 ttl=64 time=1.0 ms\n"
+                             "PING h (192.0.2.1) 56(84) bytes of data.\n"
+                             "1 packets transmitted, 0 received, 100% packet loss\n")
+    with pytest.raises(InputError, match=r"holds a single sample \(run-2\)") as e:
+        read_file(p, "ping")
+    assert e.value.line == 4
+
+
 def test_non_utf8_names_the_line(tmp_path):
     p = tmp_path / "bad.ping"
     p.write_bytes(b"PING x (192.0.2.1) 56(84) bytes of data.\n64 bytes from \xe9: icmp_seq=1 time=1 ms\n")

@@ -35,15 +35,19 @@ def one(path, **options):
 
 
 def test_rfc3550_rtt_worked_example_from_ntp(tmp_path):
-    p = write_log(tmp_path, [{"arrival_ntp": RFC_ARRIVAL_NTP, "lsr": RFC_LSR, "dlsr": RFC_DLSR}])
-    assert one(p)["rtt_ms"].tolist() == [6125.0]
+    # a second report without an SR makes a trace of two samples (one sample has no step)
+    p = write_log(tmp_path, [{"arrival_ntp": RFC_ARRIVAL_NTP, "lsr": RFC_LSR, "dlsr": RFC_DLSR},
+                             {"arrival_ntp": RFC_ARRIVAL_NTP + 2**32}])
+    rtt = one(p)["rtt_ms"]
+    assert rtt[0] == 6125.0 and np.isnan(rtt[1])
 
 
 def test_rfc3550_rtt_worked_example_from_unix_seconds(tmp_path):
     # the same arrival as a calendar time from the RFC figure; NTP = Unix + 2208988800 (RFC 868)
     unix = dt.datetime(1995, 11, 10, 11, 33, 36, 500000, tzinfo=dt.timezone.utc).timestamp()
-    p = write_log(tmp_path, [{"arrival_s": unix, "lsr": RFC_LSR, "dlsr": RFC_DLSR}])
-    assert one(p)["rtt_ms"].tolist() == [6125.0]
+    p = write_log(tmp_path, [{"arrival_s": unix, "lsr": RFC_LSR, "dlsr": RFC_DLSR}, {"arrival_s": unix + 1}])
+    rtt = one(p)["rtt_ms"]
+    assert rtt[0] == 6125.0 and np.isnan(rtt[1])
 
 
 def test_no_sender_report_means_rtt_unknown(tmp_path):
@@ -64,7 +68,8 @@ def test_dlsr_after_arrival_is_an_error(tmp_path):
         read_file(p, "rtcp")
     assert (e.value.line, e.value.field) == (2, "dlsr")
     # exactly A - LSR is a zero RTT: below the 1/65536 s resolution, so unknown rather than an error
-    p = write_log(tmp_path, [{"arrival_ntp": RFC_ARRIVAL_NTP, "lsr": RFC_LSR, "dlsr": 0x000B6000}])
+    p = write_log(tmp_path, [{"arrival_ntp": RFC_ARRIVAL_NTP, "lsr": RFC_LSR, "dlsr": 0x000B6000},
+                             {"arrival_ntp": RFC_ARRIVAL_NTP + 2**32}])
     assert np.isnan(one(p)["rtt_ms"]).all()
 
 
@@ -112,8 +117,8 @@ def test_jitter_needs_a_clock_rate():
 
 
 def test_clock_rate_option_from_cli_text(tmp_path):
-    p = write_log(tmp_path, [{"arrival_s": 10.0, "jitter": 480}])
-    assert one(p, clock_rate_hz="48000")["jitter_ms"].tolist() == [10.0]  # 480 / 48000 Hz = 10 ms
+    p = write_log(tmp_path, [{"arrival_s": 10.0, "jitter": 480}, {"arrival_s": 11.0, "jitter": 960}])
+    assert one(p, clock_rate_hz="48000")["jitter_ms"].tolist() == [10.0, 20.0]  # 480 / 48000 Hz = 10 ms
     with pytest.raises(InputError) as e:
         read_file(p, "rtcp", clock_rate_hz="fast")
     assert e.value.field == "clock_rate_hz"
@@ -166,6 +171,24 @@ def test_bad_lines_name_line_and_field(tmp_path, lines, line, field):
     assert e.value.line == line
     assert e.value.field == field
     assert e.value.path == str(p)
+
+
+def test_single_report_and_absurd_span_are_refused(tmp_path):
+    p = write_log(tmp_path, ['# one report', '{"arrival_s": 1.0}'])
+    with pytest.raises(InputError, match="holds a single sample") as e:
+        read_file(p, "rtcp")
+    assert (e.value.path, e.value.line) == (str(p), 2)
+    # one SSRC with a single report among others: named by its part
+    p = write_log(tmp_path, [{"arrival_s": 1.0, "ssrc": 1}, {"arrival_s": 2.0, "ssrc": 1},
+                             {"arrival_s": 2.5, "ssrc": 2}])
+    with pytest.raises(InputError, match=r"holds a single sample \(ssrc-00000002\)") as e:
+        read_file(p, "rtcp")
+    assert e.value.line == 3
+    # reports a second apart, then one 127 years later: a grid of 4e9 one-second steps
+    p = write_log(tmp_path, [{"arrival_s": 0}, {"arrival_s": 1}, {"arrival_s": 2}, {"arrival_s": 4e9}])
+    with pytest.raises(InputError, match="jumps by 4e\\+09 s after line 3") as e:
+        read_file(p, "rtcp")
+    assert e.value.line == 4
 
 
 def test_empty_and_comment_only_files(tmp_path):

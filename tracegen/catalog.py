@@ -423,6 +423,21 @@ class Catalog:
             self._commit([], drop_ids=ids)
         return ids
 
+    def discard_if_empty(self, *, remove_root: bool = False) -> bool:
+        """Undo ``open(create=True)`` of a catalog that never took a trace (a first ingest that failed):
+        remove its marker, lock, empty index and ``traces/``, and with ``remove_root`` the folder itself
+        when that leaves it empty. Returns whether the catalog was discarded."""
+        traces_dir = self.root / TRACES_DIR
+        if len(self) or (self.root / STAGING_DIR).exists() or any(traces_dir.iterdir()):
+            return False
+        for name in (INDEX_FILE, LOCK_FILE, MARKER_FILE):
+            (self.root / name).unlink(missing_ok=True)
+        traces_dir.rmdir()
+        if remove_root:
+            with contextlib.suppress(OSError):  # not empty: the user's own files stay, and so does the folder
+                self.root.rmdir()
+        return True
+
     # --- checking ---------------------------------------------------------------------------
     def verify(self, *, repair: bool = False, progress: bool | None = None) -> VerifyReport:
         """Check every file against its hash and content id; find orphans. ``repair`` mends what it can.

@@ -175,8 +175,20 @@ def ingest(ctx: click.Context, files: tuple[Path, ...], fmt: str, tags: tuple[st
         for path in expand_paths(files, fmt):
             click.echo(describe_file(path, fmt, labels, **given))
         return
+    from .catalog import MARKER_FILE
+
+    root = _catalog_root(ctx, catalog_path)
+    folder_existed, is_new = root.exists(), not (root / MARKER_FILE).exists()
     cat = _open(ctx, catalog_path, create=True)
-    report = cat.ingest(files, fmt, labels, skip_bad=skip_bad, workers=workers, cluster=cluster, **given)
+    try:
+        report = cat.ingest(files, fmt, labels, skip_bad=skip_bad, workers=workers, cluster=cluster, **given)
+    except TracegenError:
+        if is_new:  # a first ingest that failed leaves no half-made catalog behind
+            cat.discard_if_empty(remove_root=not folder_existed)
+        raise
+    nothing = bool(report.failed) and not report.added and not report.present
+    if nothing and is_new:
+        cat.discard_if_empty(remove_root=not folder_existed)
     if as_json:
         _print_json({"files": report.files, "added": report.added, "present": report.present,
                      "failed": report.failed})
@@ -185,6 +197,8 @@ def ingest(ctx: click.Context, files: tuple[Path, ...], fmt: str, tags: tuple[st
                    f"{len(report.present)} already present; catalog {cat.root} holds {len(cat)}")
         for line in report.failed:
             click.echo(f"skipped: {line}", err=True)
+    if nothing:  # --skip-bad, and every file was bad
+        ctx.exit(1)
 
 
 # --- catalog ---------------------------------------------------------------------------------------
@@ -214,9 +228,10 @@ def list_(ctx: click.Context, where: tuple[str, ...], as_json: bool, catalog_pat
         return
     click.echo(f"{'id':16}  {'origin':9}  {'group':16}  {'duration':>9}  {'step':>6}  {'mean Mbit/s':>11}  tags")
     for r in rows:
-        mean = r["mean_bw_bps"]
+        mean, step = r["mean_bw_bps"], r["step_s"]  # no step: a one-sample trace from an older tracegen
         click.echo(f"{r['id']:16}  {r['origin']:9}  {str(r['group'])[:16]:16}  {r['duration_s']:8.0f}s  "
-                   f"{r['step_s']:5.2g}s  {'' if mean is None else f'{mean / 1e6:11.3f}':>11}  {_fmt_tags(r['tags'])}")
+                   f"{'-' if step is None else f'{step:5.2g}s':>6}  {'' if mean is None else f'{mean / 1e6:11.3f}':>11}  "
+                   f"{_fmt_tags(r['tags'])}")
     click.echo(f"{len(rows)} traces")
 
 

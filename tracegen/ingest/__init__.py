@@ -28,7 +28,7 @@ def reader(fmt: str) -> ModuleType:
     return importlib.import_module(f"{__name__}.{FORMATS[fmt]}")
 
 
-_FLAGS = {"tag_columns": "--tag-column"}
+_FLAGS = {"tag_columns": "--tag-column", "interval_s": "--interval"}
 
 
 def option_flag(name: str) -> str:

@@ -9,8 +9,15 @@ from typing import Any, Mapping
 import numpy as np
 
 from ..errors import InputError
-from ..trace import Trace
+from ..trace import GAP_FACTOR, Trace
 from .textlines import file_sha256
+
+# Analysis puts a trace on a regular grid of its nominal step (the median spacing), so a trace may span at
+# most this many of its steps: one glitched time or a wrong unit would otherwise mean a grid of gigabytes
+# (the same bound as the packets reader's MAX_BINS: 194 days of 1 s steps).
+MAX_STEPS = 1 << 24
+# and at most this long (about 136 years): no measurement does; a longer span is a wrong unit or a glitch
+MAX_SPAN_S = float(2**32)
 
 
 @dataclass(frozen=True)
@@ -42,11 +49,12 @@ def provenance(path: str | Path, reader: str, options: Mapping[str, Any], **extr
 def build_trace(path: str | Path, labels: Labels, prov: Mapping[str, Any], *, t_s: np.ndarray,
                 lines: np.ndarray | None = None, part: str | None = None,
                 extra_tags: Mapping[str, str] | None = None, group: str | None = None,
-                **columns: Any) -> Trace:
+                time_field: str | None = None, **columns: Any) -> Trace:
     """Validate columns into a Trace with the labels applied.
 
     ``part`` names one run inside a file that holds several (a segment, an SSRC); it joins the default
     source and goes into provenance. ``group`` overrides the default group (e.g. from a device column).
+    ``time_field`` names the times in errors from :func:`check_extent`.
     """
     p = Path(path)
     source = labels.source or p.name
@@ -57,8 +65,48 @@ def build_trace(path: str | Path, labels: Labels, prov: Mapping[str, Any], *, t_
     prov = dict(prov)
     if part is not None:
         prov["part"] = part
-    return Trace.from_columns(t_s, path=str(path), lines=lines, origin="measured", source=source, tags=tags,
-                              group=labels.group or group or p.stem, provenance=prov, **columns)
+    tr = Trace.from_columns(t_s, path=str(path), lines=lines, origin="measured", source=source, tags=tags,
+                            group=labels.group or group or p.stem, provenance=prov, **columns)
+    check_extent(tr["t_s"], path=path, lines=lines, part=part, field=time_field)
+    return tr
+
+
+def check_extent(t: np.ndarray, *, path: str | Path, lines: np.ndarray | None = None, part: str | None = None,
+                 field: str | None = None) -> None:
+    """Refuse times (validated: finite, strictly increasing) that make no usable trace: fewer than two
+    samples (no step), or a span of more than MAX_STEPS nominal steps or MAX_SPAN_S seconds.
+
+    The error names the line of the first sample past the bound and, when one jump makes most of the
+    span, the line before that jump.
+    """
+    def line(i: int) -> int | None:
+        return None if lines is None else int(lines[i])
+
+    which = "" if part is None else f" ({part})"
+    if len(t) < 2:
+        raise InputError(f"holds a single sample{which}", path=str(path), line=line(0), field=field,
+                         hint="a trace needs at least two samples (their spacing is its step); add rows or leave "
+                              "this one out")
+    dt = np.diff(t)
+    step = float(np.median(dt))
+    rel = t - t[0]
+    limit = min(MAX_STEPS * step, MAX_SPAN_S)
+    if rel[-1] <= limit:
+        return
+    i = int(np.argmax(rel > limit))  # the first sample past the bound
+    j = int(np.argmax(dt[:i]))  # the largest jump up to it: from sample j to j + 1
+    bound = (f"more than {MAX_SPAN_S:.6g} s (136 years)" if limit == MAX_SPAN_S
+             else f"more than {MAX_STEPS} steps of its {step:.6g} s step")
+    days = rel[i] / 86400
+    reach = f"{rel[i]:.6g} s" if days < 1 else f"{days:,.0f} days" if days < 1e9 else f"{days:.3g} days"
+    if dt[j] > GAP_FACTOR * step and dt[j] >= 0.5 * rel[i]:
+        where = "" if line(j) is None else f" after line {line(j)}"
+        message = f"time jumps by {dt[j]:.6g} s{where}: the trace{which} reaches {reach}, {bound}"
+    else:
+        message = f"time reaches {reach} after the first sample{which}, {bound}"
+    raise InputError(message, path=str(path), line=line(i), field=field,
+                     hint="a glitched time or the wrong time unit? fix or drop the bad row, or split the file "
+                          "into shorter traces")
 
 
 def require_rows(n: int, path: str | Path, what: str = "data rows") -> None:

@@ -140,12 +140,15 @@ class _Table:
         i = self.index.get(option)
         return None if i is None else self.cells[i]
 
+    def name(self, option: str) -> str:
+        """The header name (else the position) of the column mapped to ``option``."""
+        return self.header[self.index[option]] if self.header else str(self.index[option])
+
     def floats(self, option: str, scale: float = 1.0) -> np.ndarray | None:
         col = self.column(option)
         if col is None:
             return None
-        name = self.header[self.index[option]] if self.header else str(self.index[option])
-        return parse_floats(col, path=self.path, lines=self.lines, column=name) * scale
+        return parse_floats(col, path=self.path, lines=self.lines, column=self.name(option)) * scale
 
     def ignored(self) -> list[str]:
         used = set(self.index.values()) | set(self.tag_index.values())
@@ -171,6 +174,9 @@ def _times(table: _Table, unit: str) -> tuple[np.ndarray, str | None]:
     col = table.column("time_column")
     name = table.header[table.index["time_column"]] if table.header else "time"
     if unit != units.ISO8601:
+        whole = _whole_numbers(col)
+        if whole is not None:  # differences first, exactly: epoch nanoseconds need more than float64's 53 bits
+            return (whole - whole[0]).astype(np.float64) * units.time_scale_s(unit), None
         t = parse_floats(col, path=table.path, lines=table.lines, column=name) * units.time_scale_s(unit)
         return t, None
     stamps = pd.to_datetime(pd.Series(col, dtype="string").str.strip(), format="ISO8601", utc=True,
@@ -184,6 +190,28 @@ def _times(table: _Table, unit: str) -> tuple[np.ndarray, str | None]:
     return seconds, stamps.iloc[0].isoformat()
 
 
+def _whole_numbers(cells: list[str]) -> np.ndarray | None:
+    """The cells as int64 when every one is an integer whose differences fit int64, else None."""
+    try:
+        whole = np.asarray(cells, dtype=str).astype(np.int64)
+    except (ValueError, OverflowError):
+        return None
+    return whole if whole.min() > -2**62 and whole.max() < 2**62 else None
+
+
+def _check_loss(loss: np.ndarray, unit: str, table: _Table) -> None:
+    """Loss as given in the file must lie in 0..1 (fraction) or 0..100 (percent)."""
+    top = 100.0 if unit == "percent" else 1.0
+    with np.errstate(invalid="ignore"):
+        bad = np.flatnonzero((loss < 0) | (loss > top))
+    if bad.size:
+        i = int(bad[0])
+        hint = ("with --loss-unit percent, loss is 0..100; is --loss-column the right column?" if unit == "percent"
+                else "loss is a fraction here; if the file has percent, give --loss-unit percent")
+        raise InputError(f"loss {loss[i]:g} is outside 0..{top:g}", path=str(table.path), line=int(table.lines[i]),
+                         field=table.name("loss_column"), hint=hint)
+
+
 def _parts(table: _Table) -> list[tuple[str | None, np.ndarray]]:
     col = table.column("split_column")
     if col is None:
@@ -194,12 +222,6 @@ def _parts(table: _Table) -> list[tuple[str | None, np.ndarray]]:
     for value in order[np.argsort(first)]:
         out.append((str(value), np.flatnonzero(values == value)))
     return out
-
-
-def _identifier(value: str, column: str, keep_personal: bool) -> str:
-    if keep_personal or not privacy.is_personal_field(column):
-        return value
-    return privacy.pseudonym(value)
 
 
 def _read(path: Path, labels: Labels, options: dict[str, Any]) -> tuple[list[Trace], _Table]:
@@ -217,7 +239,10 @@ def _read(path: Path, labels: Labels, options: dict[str, Any]) -> tuple[list[Tra
     if bw_raw is None:
         raise InputError("no bandwidth column given", path=str(path), field="bandwidth_column")
     rtt = table.floats("rtt_column", rtt_scale)
-    loss = table.floats("loss_column", loss_scale)
+    loss = table.floats("loss_column")
+    if loss is not None:
+        _check_loss(loss, options["loss_unit"], table)
+        loss = loss * loss_scale
     jitter = table.floats("jitter_column", jitter_scale)
     lat = table.floats("lat_column")
     lon = table.floats("lon_column")
@@ -238,21 +263,36 @@ def _read(path: Path, labels: Labels, options: dict[str, Any]) -> tuple[list[Tra
             t = t_all[rows] - t_all[rows[0]]
         lines = table.lines[rows]
         bw = bw_raw[rows]
+        if all(np.isnan(a[rows]).all() for a in (bw_raw, rtt, loss, jitter) if a is not None):
+            # no data at all (RTT or loss without bandwidth is data, as from ping)
+            which = "" if part is None else f" ({options['split_column']}={part})"
+            also = [table.name(o) for o in ("rtt_column", "loss_column", "jitter_column") if o in table.index]
+            raise InputError(f"bandwidth is empty on every row{which}"
+                             + (f", and so {'is' if len(also) == 1 else 'are'} {', '.join(also)}" if also else ""),
+                             path=str(path), line=int(lines[0]), field=table.name("bandwidth_column"),
+                             hint="is --bandwidth-column the right column? a trace needs measured values")
         if bw_unit == units.BYTES_PER_INTERVAL:
             t, bw = _bytes_to_rate(t, bw, interval, path, lines)
         else:
             bw = units.bandwidth_to_bps(bw, bw_unit)
-        tags = {name: _identifier(table.cells[i][rows[0]].strip(), name, labels.keep_personal)
+        tags = {name: privacy.identifier(table.cells[i][rows[0]].strip(), name, labels.keep_personal)
                 for name, i in table.tag_index.items()}
         group = None
         if groups is not None:
             group_name = table.header[table.index["group_column"]] if table.header else "group"
-            group = _identifier(groups[rows[0]].strip(), group_name, labels.keep_personal)
+            values = np.asarray([g.strip() for g in np.asarray(groups, dtype=object)[rows]], dtype=object)
+            other = np.flatnonzero(values != values[0])
+            if other.size:  # one trace cannot belong to two groups: a leak-free split would be wrong
+                raise InputError(f"changes from '{values[0]}' to '{values[other[0]]}' within one trace",
+                                 path=str(path), line=int(lines[other[0]]), field=group_name,
+                                 hint=f"cut the file into one trace per value with --split-column {group_name}")
+            group = privacy.identifier(values[0], group_name, labels.keep_personal)
         pick = (lambda a: None if a is None else a[rows])
         traces.append(build_trace(
-            path, labels, prov, t_s=t, lines=lines, part=None if part is None else f"{options['split_column']}={part}",
-            extra_tags=tags, group=group, bandwidth_bps=bw, rtt_ms=pick(rtt), loss=pick(loss),
-            jitter_ms=pick(jitter), lat_deg=pick(lat), lon_deg=pick(lon),
+            path, labels, prov, t_s=t, lines=lines, part=None if part is None else (
+                f"{options['split_column']}={privacy.identifier(part, table.name('split_column'), labels.keep_personal)}"),
+            extra_tags=tags, group=group, time_field=table.name("time_column"), bandwidth_bps=bw,
+            rtt_ms=pick(rtt), loss=pick(loss), jitter_ms=pick(jitter), lat_deg=pick(lat), lon_deg=pick(lon),
             cell=None if cells is None else [c.strip() or None for c in np.asarray(cells, dtype=object)[rows]]))
     return traces, table
 

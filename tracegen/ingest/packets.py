@@ -212,13 +212,13 @@ def _bins(path: Path, tab: _Table, scale: float, interval: float, bits: int | No
     n_all = np.floor(span / interval + 1e-9) + 1 if np.isfinite(span) else np.inf
     if not n_all <= MAX_BINS:
         raise InputError(f"spans {span:g} s, more than {MAX_BINS} bins of {interval:g} s", path=str(path),
-                         line=int(lines[-1]), field="time_column", hint="check time_unit and interval_s")
+                         line=int(lines[-1]), field="time_column", hint="check --time-unit and --interval")
     n_all = int(n_all)
     covered = span - (n_all - 1) * interval
     n = n_all if covered >= interval * (0.5 - 1e-9) else n_all - 1
     if n == 0:
         raise InputError(f"covers {span:g} s, less than half of one {interval:g} s interval", path=str(path),
-                         hint="use a smaller interval_s")
+                         hint="use a smaller --interval")
     b = np.minimum(np.floor(rel / interval + 1e-9).astype(np.int64), n_all - 1)
     kept = b < n
     bandwidth = np.bincount(b[kept], weights=size[kept].astype(np.float64), minlength=n) * 8.0 / interval
@@ -265,6 +265,9 @@ def _bins(path: Path, tab: _Table, scale: float, interval: float, bits: int | No
             last = known[np.r_[kb[1:] != kb[:-1], True]]  # the last known packet of each bin
             jitter_ms[b[last]] = jit[last] * 1000.0
 
+    if n == 1:  # after the columns' checks, which name a line
+        raise InputError(f"covers {span:g} s, a single {interval:g} s interval", path=str(path),
+                         line=int(lines[-1]), hint="use a smaller --interval: a trace needs at least two bins")
     # each bin names the line of its first packet (an empty bin: the previous bin's)
     bin_line = np.zeros(n, dtype=np.int64)
     starts = np.flatnonzero(np.r_[True, b[1:] != b[:-1]] & kept)

@@ -1,8 +1,8 @@
 """Stream a text file as numbered lines with bounded memory.
 
 Every reader goes through here, so every reader has the same guarantees: a line longer than the limit
-fails fast without being held in memory, bytes that are not UTF-8 fail with the line that holds them, and
-line numbers are 1-based as an editor shows them.
+fails fast without being held in memory, bytes that are not UTF-8 fail with the line that holds them, a
+compressed file (gzip, xz, zstd, zip) fails saying so, and line numbers are 1-based as an editor shows them.
 """
 
 from __future__ import annotations
@@ -15,6 +15,13 @@ from ..errors import InputError
 
 MAX_LINE_BYTES = 1 << 20  # 1 MiB: far above any real log line, small enough to never matter for memory
 _CHUNK = 1 << 20
+# magic bytes that start compressed files, never a text log -> what the file is, and how to open it
+_COMPRESSED = {
+    b"\x1f\x8b": ("gzip-compressed", "decompress it first, e.g. gunzip -k FILE"),
+    b"\xfd7zXZ\x00": ("xz-compressed", "decompress it first, e.g. unxz -k FILE"),
+    b"\x28\xb5\x2f\xfd": ("zstd-compressed", "decompress it first, e.g. unzstd FILE"),
+    b"PK\x03\x04": ("a zip archive (or a spreadsheet such as .xlsx)", "unzip it, or export the sheet as CSV"),
+}
 
 
 def file_sha256(path: str | Path) -> str:
@@ -49,6 +56,8 @@ def iter_lines(path: str | Path, *, max_line_bytes: int = MAX_LINE_BYTES) -> Ite
             block = f.read(_CHUNK)
             if not block:
                 break
+            if not lineno and not pending:  # the file's first bytes
+                _refuse_compressed(block, path)
             buf = pending + block
             parts = buf.split(b"\n")
             pending = parts.pop()
@@ -66,6 +75,12 @@ def iter_lines(path: str | Path, *, max_line_bytes: int = MAX_LINE_BYTES) -> Ite
         if pending:
             lineno += 1
             yield lineno, _decode(pending, path, lineno, first)
+
+
+def _refuse_compressed(head: bytes, path: str) -> None:
+    for magic, (what, hint) in _COMPRESSED.items():
+        if head.startswith(magic):
+            raise InputError(f"is {what}, not text", path=path, line=1, hint=hint.replace("FILE", Path(path).name))
 
 
 def _decode(raw: bytes, path: str, lineno: int, first: bool) -> str:
