@@ -416,7 +416,8 @@ def _synth_options(f):
                      help="File format with --out [output.format]."),
         click.option("--catalog", type=click.Path(file_okay=False, path_type=Path), default=None,
                      help="Add the traces to this catalog instead [output.catalog]."),
-        click.option("--force", is_flag=True, default=None, help="Replace files that exist in --out [output.force]."),
+        click.option("--force", is_flag=True, default=None, help="Replace files that exist in --out; files of the earlier run there that this run does not "
+                     "write again are removed [output.force]."),
         click.option("--manifest", type=click.Path(dir_okay=False, path_type=Path), default=None,
                      help="Where the per-trace weight table goes [output.manifest]."),
         click.option("--cross-flows-per-s", type=float, default=None,
@@ -498,7 +499,7 @@ def synth_cmd(ctx: click.Context, model_file: Path | None, workers: int | None, 
     from .model import load
     from .progress import bar
     from .synth import iter_synth, model_digest
-    from .synth.output import add_to_catalog, check_targets, synth_files
+    from .synth.output import add_to_catalog, check_targets, check_writable, synth_files
 
     if values.get("catalog") is None and values.get("out") is None and ctx.obj.get("catalog") is not None:
         values["catalog"] = ctx.obj["catalog"]
@@ -517,11 +518,16 @@ def synth_cmd(ctx: click.Context, model_file: Path | None, workers: int | None, 
                                  fmt=plan.output_format, name=plan.name, run=run, manifest=plan.manifest,
                                  workers=workers, cluster=cluster, progress=tick, **options)
         click.echo(f"wrote {len(report.files)} traces to {plan.output_dir} (manifest {report.manifest})")
+        if report.removed:
+            click.echo(f"removed {len(report.removed)} file(s) of the earlier run in {plan.output_dir} "
+                       "that this run did not write again")
     else:
         from .catalog import Catalog
 
         if plan.manifest is not None and plan.manifest.exists() and not plan.force:
             raise TracegenError("exists already", path=plan.manifest, hint="pass --force to replace it")
+        if plan.manifest is not None:
+            check_writable(plan.manifest, hint="choose another --manifest")
         cat = Catalog.open(plan.output_catalog, create=True)
         stream = iter_synth(model, plan.count, plan.duration_s, plan.step_s, plan.seed, workers=workers,
                             cluster=cluster, **plan.options())

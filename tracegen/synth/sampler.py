@@ -713,7 +713,13 @@ def sample_trace(model: Any, duration_s: float, step_s: float, rng: np.random.Ge
     tick_at = np.cumsum(tick_n) - tick_n                       # first base sample of each tick
     if slow is not None:  # per-trace offset and drift (fit/slow.py): the grid value at each tick's start
         level_log += slow_grid[_cell(tick_at * (b / h), n_grid)]
-    bw_tick = np.exp(level_log)
+    with np.errstate(over="ignore"):
+        bw_tick = np.exp(level_log)
+    if not np.all(np.isfinite(bw_tick)):
+        state = int(tick_state[np.flatnonzero(~np.isfinite(bw_tick))[0]])
+        raise TracegenError(f"the model drew a bandwidth beyond any float in state {state} (log level "
+                            f"{plan.mean_log[state]:.4g})", field="bandwidth_bps",
+                            hint="the model file's levels or variances are far out of range: refit it")
 
     if plan.has_rtt.any():
         z = rng.standard_normal(n_ticks)
