@@ -2,8 +2,9 @@
 
 Defaults (what every reader does unless ``keep_personal`` is set):
 - identifiers (IP and MAC addresses, IMSI/IMEI/MSISDN, device, subscriber or user ids, RTCP CNAMEs) are
-  never stored; where one is used as a group or a tag it is replaced by a keyed hash (a pseudonym), which
-  still keeps one device's traces together for leak-free splits;
+  never stored; where one is used as a group, a tag or a split column it is replaced by a salted hash (a
+  pseudonym), which still keeps one device's traces together for leak-free splits. The salt is fixed, so
+  the same id gives the same pseudonym in every catalog, and a guessable id can be found by trying it;
 - locations are rounded to 0.01 degree (about 1.1 km of latitude);
 - calendar start times are kept to the day only.
 This is a technical default, not legal advice: follow the data-protection law that applies to you.
