@@ -86,3 +86,15 @@ def test_a_trace_too_long_to_draw_in_memory_is_refused_up_front(tmp_path):
     res = CliRunner().invoke(cli, ["synth", str(model), "--count", "1", "--duration", "1e12", "--out",
                                    str(tmp_path / "out")])
     assert res.exit_code != 0 and "samples per trace" in res.output and not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("call, name", [
+    (lambda: tracegen.fit([], max_iter=0), "max_iter"),
+    (lambda: tracegen.fit([], restarts=0), "restarts"),
+    (lambda: tracegen.coverage([Trace.from_columns([0.0, 1.0], bandwidth_bps=[1.0, 2.0])],
+                               [Trace.from_columns([0.0, 1.0], bandwidth_bps=[1.0, 2.0])], k=0), "k"),
+])
+def test_a_bad_count_is_blamed_on_its_own_option(call, name):
+    with pytest.raises(TracegenError, match="must be at least") as info:
+        call()
+    assert info.value.field == name

@@ -182,13 +182,15 @@ def widen_cmd(ctx: click.Context, model_path: Path, selection: tuple[str, ...], 
     mix = None if mix_path is None else read_mix(mix_path, scheme)
     traces, label = _side(ctx, catalog_path, selection + where, "selection")
     ref = _side(ctx, catalog_path, against, "against")[0] if against else None
+    if max_per_cell is not None and max_per_cell < 1:
+        raise TracegenError(f"must be at least 1, got {max_per_cell}", field="--max-per-cell")
     if cells:
         goals = []
         for text in cells:
             key, sep, n = text.rpartition("=")
             if not sep or not key or not n.strip().isdigit():
                 raise TracegenError(f"cannot read '{text}'", field="--cell", hint="write KEY=N, e.g. 'level=<1M=40'")
-            goals.append(CellGoal(key, int(n)))
+            goals.append(CellGoal(key, int(n) if max_per_cell is None else min(int(n), max_per_cell)))
     else:
         if ref is None and mix is None:
             raise TracegenError("nothing to aim at", field="--against",

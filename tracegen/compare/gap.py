@@ -461,8 +461,9 @@ def _coverage(real: Sequence[Trace], synthetic: Sequence[Trace], *, scales_s: Se
     scales = sorted({float(s) for s in scales_s})
     if not scales or any(not (math.isfinite(s) and s > 0) for s in scales):
         raise TracegenError(f"window scales must be positive seconds, got {list(scales_s)}", field="scales_s")
-    if splits < 1 or k < 1 or max_points < 10:
-        raise TracegenError("splits and k must be at least 1 and max_points at least 10", field="splits")
+    for name, value, least in (("splits", splits, 1), ("k", k, 1), ("max_points", max_points, 10)):
+        if value < least:
+            raise TracegenError(f"must be at least {least}, got {value}", field=name)
     if step_s is None:
         step_s = common_step(real, synthetic)
     prep_r, prep_s = prepare(real, step_s), prepare(synthetic, step_s)

@@ -187,8 +187,9 @@ def fit(traces: Sequence[Trace] | Iterable[Trace], *, states: int | Iterable[int
     check_seed(seed)
     if criterion not in CRITERIA:
         raise TracegenError(f"unknown criterion '{criterion}'", field="criterion", hint=f"use {' or '.join(CRITERIA)}")
-    if restarts < 1 or max_iter < 1:
-        raise TracegenError("restarts and iterations must be at least 1", field="restarts")
+    for name, value in (("restarts", restarts), ("max_iter", max_iter)):
+        if value < 1:
+            raise TracegenError(f"must be at least 1, got {value}", field=name)
     counts = _state_range(states)
     prep = prepare(traces, step_s=step_s, with_rtt=with_rtt, floor_bps=floor_bps)
     slow: SlowFit | None = None
