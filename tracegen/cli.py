@@ -229,9 +229,10 @@ def list_(ctx: click.Context, where: tuple[str, ...], as_json: bool, catalog_pat
     click.echo(f"{'id':16}  {'origin':9}  {'group':16}  {'duration':>9}  {'step':>6}  {'mean Mbit/s':>11}  tags")
     for r in rows:
         mean, step = r["mean_bw_bps"], r["step_s"]  # no step: a one-sample trace from an older tracegen
+        step_text = "-" if step is None else f"{step:5.2g}s"
+        mean_text = "" if mean is None else f"{mean / 1e6:11.3f}"
         click.echo(f"{r['id']:16}  {r['origin']:9}  {str(r['group'])[:16]:16}  {r['duration_s']:8.0f}s  "
-                   f"{'-' if step is None else f'{step:5.2g}s':>6}  {'' if mean is None else f'{mean / 1e6:11.3f}':>11}  "
-                   f"{_fmt_tags(r['tags'])}")
+                   f"{step_text:>6}  {mean_text:>11}  {_fmt_tags(r['tags'])}")
     click.echo(f"{len(rows)} traces")
 
 
@@ -295,8 +296,9 @@ def verify(ctx: click.Context, repair: bool, as_json: bool, catalog_path: Path |
             click.echo(f"problem: {line}")
         for line in report.repaired:
             click.echo(f"repaired: {line}")
-        click.echo(f"{report.checked} traces checked: "
-                   + (("consistent after repair" if report.repaired else "consistent") if report.ok else f"{len(report.problems)} problems (try --repair)"))
+        verdict = ("consistent after repair" if report.repaired else "consistent") if report.ok \
+            else f"{len(report.problems)} problems (try --repair)"
+        click.echo(f"{report.checked} traces checked: {verdict}")
     if not report.ok:
         ctx.exit(1)
 
@@ -416,8 +418,9 @@ def _synth_options(f):
                      help="File format with --out [output.format]."),
         click.option("--catalog", type=click.Path(file_okay=False, path_type=Path), default=None,
                      help="Add the traces to this catalog instead [output.catalog]."),
-        click.option("--force", is_flag=True, default=None, help="Replace files that exist in --out; files of the earlier run there that this run does not "
-                     "write again are removed [output.force]."),
+        click.option("--force", is_flag=True, default=None,
+                     help="Replace files that exist in --out; files of the earlier run there that this run does not "
+                          "write again are removed [output.force]."),
         click.option("--manifest", type=click.Path(dir_okay=False, path_type=Path), default=None,
                      help="Where the per-trace weight table goes [output.manifest]."),
         click.option("--cross-flows-per-s", type=float, default=None,

@@ -288,9 +288,10 @@ def _read(path: Path, labels: Labels, options: dict[str, Any]) -> tuple[list[Tra
                                  hint=f"cut the file into one trace per value with --split-column {group_name}")
             group = privacy.identifier(values[0], group_name, labels.keep_personal)
         pick = (lambda a: None if a is None else a[rows])
+        if part is not None:
+            part = privacy.identifier(part, table.name("split_column"), labels.keep_personal)
         traces.append(build_trace(
-            path, labels, prov, t_s=t, lines=lines, part=None if part is None else (
-                f"{options['split_column']}={privacy.identifier(part, table.name('split_column'), labels.keep_personal)}"),
+            path, labels, prov, t_s=t, lines=lines, part=None if part is None else f"{options['split_column']}={part}",
             extra_tags=tags, group=group, time_field=table.name("time_column"), bandwidth_bps=bw,
             rtt_ms=pick(rtt), loss=pick(loss), jitter_ms=pick(jitter), lat_deg=pick(lat), lon_deg=pick(lon),
             cell=None if cells is None else [c.strip() or None for c in np.asarray(cells, dtype=object)[rows]]))
