@@ -98,3 +98,21 @@ def test_a_bad_count_is_blamed_on_its_own_option(call, name):
     with pytest.raises(TracegenError, match="must be at least") as info:
         call()
     assert info.value.field == name
+
+
+@pytest.mark.parametrize("options, name", [
+    (["--set", "cross_traffic.flow_rate_per_s=1e9"], "cross_traffic.flow_rate_per_s"),
+    (["--set", "cross_traffic.onoff_sources=100000000"], "cross_traffic.onoff_sources"),
+    (["--set", "handover.rate_per_min=1e9"], "handover.rate_per_min"),
+    (["--tilt-handovers", "1e300", "--handovers-per-min", "1"], "tilt.handover_rate_factor"),
+])
+def test_event_rates_beyond_memory_are_refused_before_drawing(tmp_path, options, name):
+    from click.testing import CliRunner
+
+    from tracegen.cli import cli
+
+    model = Path(__file__).resolve().parents[1] / "models" / "quillon-lte.json"
+    res = CliRunner().invoke(cli, ["synth", str(model), "--count", "1", "--duration", "60", "--out",
+                                   str(tmp_path / "out"), *options])
+    assert res.exit_code != 0 and f"field '{name}'" in res.output and "expected in one" in res.output
+    assert not (tmp_path / "out").exists()

@@ -27,7 +27,7 @@ from ..errors import TracegenError
 from ..trace import Trace
 from .bottleneck import Bottleneck
 from .crosstraffic import CrossTraffic
-from .events import HandoverPlan, check_events
+from .events import MAX_EVENTS_PER_TRACE, HandoverPlan, check_event_counts, check_events
 from .sampler import MIN_STEP_S, check_trace_size, sample_trace
 from .tilt import Tilt, TiltPlan
 
@@ -94,6 +94,15 @@ def check_run(model: Any, count: int, duration_s: float, step_s: float, seed: in
             raise TracegenError(f"must be a {cls.__name__}, got {type(value).__name__}", field=name)
     plan = TiltPlan.build(model, tilt)
     check_events(model, handover, plan)
+    check_event_counts(model, handover, plan, duration_s)
+    if cross_traffic is not None:
+        period = cross_traffic.on_mean_s + cross_traffic.off_mean_s
+        for expected, name in ((cross_traffic.flow_rate_per_s * duration_s, "cross_traffic.flow_rate_per_s"),
+                               (cross_traffic.onoff_sources * duration_s / period, "cross_traffic.onoff_sources")):
+            if not expected <= MAX_EVENTS_PER_TRACE:
+                raise TracegenError(f"{expected:.3g} flows or on-periods expected in one {duration_s:g} s trace, "
+                                    f"more than {MAX_EVENTS_PER_TRACE:.0e}", field=name,
+                                    hint="check the rate and its unit")
     return plan
 
 

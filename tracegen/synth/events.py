@@ -62,6 +62,8 @@ def _number(name: str, value: Any, *, low: float = 0.0, low_open: bool = True, h
         raise TracegenError(f"must be a number {rng}, got {value!r}", field=f"handover.{name}")
 
 
+MAX_EVENTS_PER_TRACE = 10**7  # more in one trace is a rate in the wrong unit (and would not fit in memory)
+
 @dataclass(frozen=True)
 class HandoverPlan:
     """Handovers to inject (module docstring); None means "as the model says"."""
@@ -202,6 +204,23 @@ def check_events(model: Any, plan: HandoverPlan | None, tilt: TiltPlan) -> None:
     _check_law(_law(model, plan), tilt)
 
 
+def check_event_counts(model: Any, plan: HandoverPlan | None, tilt: TiltPlan, duration_s: float) -> None:
+    """Refuse rates that would draw more than ``MAX_EVENTS_PER_TRACE`` handovers or outages in one trace
+    (on average): a rate in the wrong unit, not a path, and the draw would not fit in memory."""
+    law = _law(model, plan)
+    ev = None if _detected_only(model, plan) else model.events
+    for what, rate_per_s, factor, rate_name, factor_name in (
+            ("handovers", law.rate_per_s, tilt.handover_rate_factor, "handover.rate_per_min",
+             "tilt.handover_rate_factor"),
+            ("outages", 0.0 if ev is None else ev.outage_rate_per_hour / 3600.0, tilt.outage_rate_factor,
+             "events.outage_rate_per_hour", "tilt.outage_rate_factor")):
+        expected = rate_per_s * factor * duration_s
+        if not expected <= MAX_EVENTS_PER_TRACE:
+            raise TracegenError(f"{expected:.3g} {what} expected in one {duration_s:g} s trace, more than "
+                                f"{MAX_EVENTS_PER_TRACE:.0e}", field=factor_name if factor > 1 else rate_name,
+                                hint="check the rate and its unit")
+
+
 def _check_law(law: _HandoverLaw, tilt: TiltPlan) -> None:
     q = law.p_fail * tilt.failure_factor
     if q > 1.0 + 1e-12:
@@ -294,4 +313,4 @@ def draw_events(model: Any, plan: HandoverPlan | None, tilt: TiltPlan, rng: np.r
                      bursts=bursts, switches=switches, llr=llr)
 
 
-__all__ = ["HandoverPlan", "EventDraw", "draw_events", "check_events", "HANDOVER", "FAILURE", "OUTAGE", "NEW_LEVEL"]
+__all__ = ["HandoverPlan", "EventDraw", "draw_events", "check_events", "check_event_counts", "MAX_EVENTS_PER_TRACE", "HANDOVER", "FAILURE", "OUTAGE", "NEW_LEVEL"]
