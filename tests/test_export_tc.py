@@ -157,3 +157,14 @@ def test_ctrl_c_removes_the_qdisc(tmp_path, fake_tc):
     assert proc.returncode == 130
     calls = log.read_text().splitlines()
     assert calls[-1] == "qdisc del dev dev0 root" and len(calls) < 10
+
+
+def test_a_coarse_step_that_does_not_divide_the_trace_ends_with_it():
+    # 60 one-second samples played at 45 s: two steps, the second the mean of seconds 45-59 (hand computed).
+    bw = np.arange(1, 61) * 1e5
+    steps = plan_steps(trace(bw), min_step_s=45.0)
+    np.testing.assert_allclose(steps.t_s, [0.0, 45.0])
+    np.testing.assert_allclose(steps.rate_bps, [np.mean(bw[:45]), np.mean(bw[45:])])
+    assert steps.end_s == 60.0
+    assert plan_steps(trace(bw), min_step_s=7.0).end_s == 60.0  # not 63: the replay is as long as the trace
+    assert plan_steps(trace(bw)).end_s == 60.0

@@ -102,13 +102,22 @@ def plan_steps(trace: Trace, *, min_step_s: float = MIN_STEP_S, nan: str = "erro
     if len(trace) == 0:
         raise TracegenError("the trace has no samples", field="trace")
     step = trace.step_s if len(trace) > 1 else min_step_s
+    own_end = float(trace["t_s"][-1] - trace["t_s"][0]) + step  # played at a coarser step, it still ends here
+    original = None
     if len(trace) > 1 and step < min_step_s * (1 - 1e-9):
-        trace = trace.resample(min_step_s)
+        original, trace = trace, trace.resample(min_step_s)
         step = min_step_s
     t = np.asarray(trace["t_s"]) - float(trace["t_s"][0])
-    bw = _fill(np.asarray(trace["bandwidth_bps"], dtype=np.float64), nan, t, trace.source)
+    bw = np.array(trace["bandwidth_bps"], dtype=np.float64)
+    loss = np.array(trace["loss"], dtype=np.float64)
+    if original is not None:  # a last bin the trace only partly covers: the mean of what it covers
+        tail = np.asarray(original["t_s"]) >= float(trace["t_s"][-1])
+        for values, name in ((bw, "bandwidth_bps"), (loss, "loss")):
+            part = np.asarray(original[name], dtype=np.float64)[tail]
+            if np.isnan(values[-1]) and np.isfinite(part).any():
+                values[-1] = np.nanmean(part)
+    bw = _fill(bw, nan, t, trace.source)
     delay = np.asarray(trace["rtt_ms"]) * delay_share
-    loss = np.asarray(trace["loss"])
     has_delay, has_loss = bool(np.isfinite(delay).any()), bool(np.isfinite(loss).any())
     outage = bw < FLOOR_BPS
     rate = np.maximum(bw, FLOOR_BPS)
@@ -118,7 +127,7 @@ def plan_steps(trace: Trace, *, min_step_s: float = MIN_STEP_S, nan: str = "erro
     for k in keys:
         same &= k[1:] == k[:-1]
     change = np.concatenate(([True], ~same))
-    end = float(t[-1] + step)
+    end = min(float(t[-1] + step), own_end)
     return Steps(t[change], rate[change], delay[change] if has_delay else None, loss[change] if has_loss else None,
                  outage[change], end)
 
