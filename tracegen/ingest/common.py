@@ -14,7 +14,7 @@ from .textlines import file_sha256
 
 # Analysis puts a trace on a regular grid of its nominal step (the median spacing), so a trace may span at
 # most this many of its steps: one glitched time or a wrong unit would otherwise mean a grid of gigabytes
-# (the same bound as the packets reader's MAX_BINS: 194 days of 1 s steps).
+# (the packets reader bounds its bins by the same number: 194 days of 1 s steps).
 MAX_STEPS = 1 << 24
 # and at most this long (about 136 years): no measurement does; a longer span is a wrong unit or a glitch
 MAX_SPAN_S = float(2**32)
@@ -67,13 +67,13 @@ def build_trace(path: str | Path, labels: Labels, prov: Mapping[str, Any], *, t_
         prov["part"] = part
     tr = Trace.from_columns(t_s, path=str(path), lines=lines, origin="measured", source=source, tags=tags,
                             group=labels.group or group or p.stem, provenance=prov, **columns)
-    check_extent(tr["t_s"], path=path, lines=lines, part=part, field=time_field)
+    check_extent(tr, path=path, lines=lines, part=part, field=time_field)
     return tr
 
 
-def check_extent(t: np.ndarray, *, path: str | Path, lines: np.ndarray | None = None, part: str | None = None,
+def check_extent(tr: Trace, *, path: str | Path, lines: np.ndarray | None = None, part: str | None = None,
                  field: str | None = None) -> None:
-    """Refuse times (validated: finite, strictly increasing) that make no usable trace: fewer than two
+    """Refuse a trace (times validated: finite, strictly increasing) that is no usable trace: fewer than two
     samples (no step), or a span of more than MAX_STEPS nominal steps or MAX_SPAN_S seconds.
 
     The error names the line of the first sample past the bound and, when one jump makes most of the
@@ -82,19 +82,20 @@ def check_extent(t: np.ndarray, *, path: str | Path, lines: np.ndarray | None = 
     def line(i: int) -> int | None:
         return None if lines is None else int(lines[i])
 
+    t = tr["t_s"]
     which = "" if part is None else f" ({part})"
     if len(t) < 2:
         raise InputError(f"holds a single sample{which}", path=str(path), line=line(0), field=field,
                          hint="a trace needs at least two samples (their spacing is its step); add rows or leave "
                               "this one out")
-    dt = np.diff(t)
-    step = float(np.median(dt))
+    step = tr.step_s
     rel = t - t[0]
     limit = min(MAX_STEPS * step, MAX_SPAN_S)
     if rel[-1] <= limit:
         return
     i = int(np.argmax(rel > limit))  # the first sample past the bound
-    j = int(np.argmax(dt[:i]))  # the largest jump up to it: from sample j to j + 1
+    dt = np.diff(t[:i + 1])
+    j = int(np.argmax(dt))  # the largest jump up to it: from sample j to j + 1
     bound = (f"more than {MAX_SPAN_S:.6g} s (136 years)" if limit == MAX_SPAN_S
              else f"more than {MAX_STEPS} steps of its {step:.6g} s step")
     days = rel[i] / 86400

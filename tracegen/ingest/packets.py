@@ -44,7 +44,7 @@ from ..jitter import interarrival_jitter
 from ..privacy import is_personal_field
 from ..trace import Trace
 from ..units import TIME_UNITS, parse_duration_s
-from .common import Labels, build_trace, parse_floats, provenance, require_rows
+from .common import MAX_STEPS, Labels, build_trace, parse_floats, provenance, require_rows
 from .textlines import iter_lines
 
 OPTIONS: dict[str, Any] = {
@@ -54,7 +54,7 @@ OPTIONS: dict[str, Any] = {
 PATTERNS: tuple[str, ...] = ("*.pkts", "*.pkts.csv", "*.packets.csv", "*.packets.txt")
 
 DELIMITERS = {",": "comma", ";": "semicolon", "\t": "tab", None: "whitespace"}
-MAX_BINS = 1 << 24  # 194 days of 1 s bins: bounds memory when a unit or interval is wrong
+MAX_BINS = MAX_STEPS  # 194 days of 1 s bins: bounds memory when a unit or interval is wrong
 MAX_MISSING = 1 << 24  # missing sequence numbers; a bigger jump is a wrong column or seq_bits
 EXACT_INT = 2**53  # larger integers are not exact in float64
 _COLUMN_OPTIONS = ("time_column", "bytes_column", "seq_column", "send_time_column")
