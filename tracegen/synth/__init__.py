@@ -23,7 +23,7 @@ from typing import Any, Iterator, Mapping
 import numpy as np
 
 from .. import __version__
-from ..errors import TracegenError
+from ..errors import TracegenError, check_seed
 from ..trace import Trace
 from .bottleneck import Bottleneck
 from .crosstraffic import CrossTraffic
@@ -79,7 +79,7 @@ def check_run(model: Any, count: int, duration_s: float, step_s: float, seed: in
               handover: HandoverPlan | None = None, tilt: Tilt | None = None) -> TiltPlan:
     """Validate a whole run before anything is drawn or written; returns the resolved tilt."""
     _check_number("count", count, integer=True, low=1, low_open=False)
-    _check_number("seed", seed, integer=True, low_open=False)
+    check_seed(seed)
     _check_number("duration_s", duration_s)
     _check_number("step_s", step_s)
     if step_s < MIN_STEP_S - 1e-12:

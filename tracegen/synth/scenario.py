@@ -27,7 +27,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Mapping
 
-from ..errors import TracegenError
+from ..errors import TracegenError, check_seed
 from ..units import parse_duration_s
 from .bottleneck import Bottleneck
 from .crosstraffic import CrossTraffic
@@ -278,8 +278,6 @@ def load_scenario(path: str | Path | None, settings: Mapping[str, Any] | None = 
     duration, step = top.get("duration_s", DEFAULTS["duration_s"]), top.get("step_s", DEFAULTS["step_s"])
     if count < 1:
         raise ScenarioError(f"must be at least 1, got {count}", field="count", path=where)
-    if seed < 0:
-        raise ScenarioError(f"must be >= 0, got {seed}", field="seed", path=where)
     if not (math.isfinite(duration) and duration > 0):
         raise ScenarioError(f"must be positive, got {duration}", field="duration_s", path=where)
     if not (math.isfinite(step) and step >= MIN_STEP_S - 1e-12):
@@ -289,6 +287,7 @@ def load_scenario(path: str | Path | None, settings: Mapping[str, Any] | None = 
         raise ScenarioError(f"step {step:g} s is longer than the duration {duration:g} s", field="step_s",
                             path=where)
     try:
+        check_seed(seed)
         check_trace_size(duration, step)
     except TracegenError as exc:
         raise ScenarioError(exc.message, field=exc.field, path=where, hint=exc.hint) from None
