@@ -177,13 +177,13 @@ def widen_cmd(ctx: click.Context, model_path: Path, selection: tuple[str, ...], 
 
     if (out is None) == (not add):
         raise TracegenError("say where the windows go", field="--out", hint="pass --out DIR or --add (not both)")
+    if max_per_cell is not None and max_per_cell < 1:
+        raise TracegenError(f"must be at least 1, got {max_per_cell}", field="--max-per-cell")
     scheme = _scheme(scale, dims, bins)
     model = load(model_path)
     mix = None if mix_path is None else read_mix(mix_path, scheme)
     traces, label = _side(ctx, catalog_path, selection + where, "selection")
     ref = _side(ctx, catalog_path, against, "against")[0] if against else None
-    if max_per_cell is not None and max_per_cell < 1:
-        raise TracegenError(f"must be at least 1, got {max_per_cell}", field="--max-per-cell")
     if cells:
         goals = []
         for text in cells:

@@ -11,15 +11,15 @@ from .errors import TracegenError
 
 def refuse_existing(*paths: str | Path | None, force: bool) -> None:
     """Before any work: a TracegenError when one output path is given twice, or exists and ``force`` is off."""
-    seen: dict[Path, Path] = {}
+    seen: set[Path] = set()
     for p in paths:
         if p is None:
             continue
         key = Path(p).resolve()
         if key in seen:
             raise TracegenError("is given for two outputs", path=p, hint="give each output its own file")
-        seen[key] = Path(p)
-        if Path(p).exists() and not force:
+        seen.add(key)
+        if key.exists() and not force:
             raise TracegenError("exists already", path=p, hint="pass --force to replace it")
 
 
